@@ -1,12 +1,20 @@
-"""Wavelength calibration: air/vacuum conversion and the detector wavelength axis."""
+"""Wavelength calibration: air/vacuum conversion, the detector wavelength axis, and the
+dispersion solution from lamp lines against packaged NIST reference lines."""
 
 from ._airvac import AIR_FORMULAS, air_to_vacuum, refractive_index_air, vacuum_to_air
 from ._axis import WavelengthAxis
+from ._lamp import DispersionSolution, find_lamp_peaks, solve_dispersion
+from ._reference import REFERENCE_SETS, reference_lines
 
 __all__ = [
     "AIR_FORMULAS",
+    "DispersionSolution",
+    "REFERENCE_SETS",
     "WavelengthAxis",
     "air_to_vacuum",
+    "find_lamp_peaks",
+    "reference_lines",
     "refractive_index_air",
+    "solve_dispersion",
     "vacuum_to_air",
 ]

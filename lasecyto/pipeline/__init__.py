@@ -1,0 +1,18 @@
+"""Batch runs: per-cell processing, the experiment runner and its run record."""
+
+from ._cell import CellJob, CellResult, lines_table, process_cell
+from ._params import DEFAULT_PARAMETERS, load_recipe, resolve_parameters
+from ._run import RunResult, calibrate_lamp, run_experiment
+
+__all__ = [
+    "DEFAULT_PARAMETERS",
+    "CellJob",
+    "CellResult",
+    "RunResult",
+    "calibrate_lamp",
+    "lines_table",
+    "load_recipe",
+    "process_cell",
+    "resolve_parameters",
+    "run_experiment",
+]

@@ -1,0 +1,197 @@
+"""Sidecar metadata (JSON) of a spectral stack: frame times, exposure, pump, camera, wavelength axis."""
+
+from __future__ import annotations
+
+import json
+import math
+import numbers
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ..calibration import WavelengthAxis
+from ..exceptions import InputError
+
+__all__ = ["CameraModel", "Sidecar", "check_sidecar", "default_sidecar_path", "read_sidecar"]
+
+SIDECAR_VERSION = 1
+
+
+@dataclass(frozen=True)
+class CameraModel:
+    """Linear camera: counts = offset + gain * photoelectrons (+ read noise), clipped at saturation."""
+
+    offset_counts: float = 0.0
+    gain_counts_per_e: float = 1.0
+    read_noise_e: float = 0.0
+    saturation_counts: float = math.inf
+
+
+@dataclass(frozen=True)
+class Sidecar:
+    """Metadata of one stack, as read by :func:`read_sidecar`.
+
+    ``frame_times_s`` and ``pump_energy_nj`` are read-only arrays;
+    ``pump_energy_nj`` holds one value per frame (a single number in the
+    file is broadcast) or is None.
+    """
+
+    path: Path
+    frame_times_s: np.ndarray
+    exposure_s: float
+    pump_energy_nj: np.ndarray | None
+    camera: CameraModel
+    wavelength: WavelengthAxis | None
+    wavelength_guess: WavelengthAxis | None
+
+
+def default_sidecar_path(stack_path) -> Path:
+    """The sidecar a stack has when none is named: the stack path with suffix ``.json``."""
+    return Path(stack_path).with_suffix(".json")
+
+
+def _is_number(v):
+    return isinstance(v, numbers.Real) and not isinstance(v, bool)
+
+
+def _number(value, path, field, *, low=None, strict=True, allow_inf=False):
+    ok = _is_number(value) and (math.isfinite(value) or (allow_inf and value == math.inf))
+    if ok and low is not None:
+        ok = value > low if strict else value >= low
+    if not ok:
+        bound = "" if low is None else f" {'>' if strict else '>='} {low:g}"
+        raise InputError("bad value", path=path, field=field, expected=f"a finite number{bound}",
+                         found=repr(value))
+    return float(value)
+
+
+def _number_list(value, path, field, *, low=None):
+    if not isinstance(value, list) or not value:
+        raise InputError("bad value", path=path, field=field, expected="a non-empty list of numbers",
+                         found=type(value).__name__ if not isinstance(value, list) else "an empty list")
+    for i, v in enumerate(value):
+        if not (_is_number(v) and math.isfinite(v)) or (low is not None and v < low):
+            bound = "" if low is None else f" >= {low:g}"
+            raise InputError("bad list element", path=path, field=f"{field}[{i}]",
+                             expected=f"a finite number{bound}", found=repr(v))
+    return np.asarray(value, dtype=np.float64)
+
+
+def _axis(block, path, key):
+    if not isinstance(block, dict):
+        raise InputError("bad wavelength block", path=path, field=key,
+                         expected="an object with polynomial_nm or values_nm and medium",
+                         found=type(block).__name__)
+    kwargs = {"medium": block.get("medium", "air")}
+    for name in ("polynomial_nm", "values_nm"):
+        if name in block:
+            kwargs[name] = tuple(_number_list(block[name], path, f"{key}.{name}").tolist())
+    try:
+        return WavelengthAxis(**kwargs)
+    except InputError as exc:
+        field = exc.field or key
+        if field.startswith("wavelength"):
+            field = key + field[len("wavelength"):]
+        raise InputError(exc.message, path=path, field=field, expected=exc.expected,
+                         found=exc.found) from None
+
+
+def _ro(a):
+    a.setflags(write=False)
+    return a
+
+
+def read_sidecar(path) -> Sidecar:
+    """Read and validate a sidecar JSON file.
+
+    Raises
+    ------
+    InputError
+        Unreadable JSON (with line and column), a missing required key, or a
+        value out of range; the message names the file and the key.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError("sidecar not found", path=path, expected="an existing JSON file",
+                         found="nothing") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError("sidecar unreadable", path=path, found=" ".join(str(exc).split())) from None
+    try:
+        doc = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"invalid JSON: {exc.msg}", path=path, field=f"line {exc.lineno}, column {exc.colno}",
+                         expected="valid JSON", found=repr(text[exc.pos:exc.pos + 20])) from None
+    if not isinstance(doc, dict):
+        raise InputError("sidecar is not an object", path=path, expected="a JSON object {...}",
+                         found=type(doc).__name__)
+    version = doc.get("lasecyto_sidecar", SIDECAR_VERSION)
+    if version != SIDECAR_VERSION or isinstance(version, bool):
+        raise InputError("unsupported sidecar version", path=path, field="lasecyto_sidecar",
+                         expected=str(SIDECAR_VERSION), found=repr(version))
+    for key in ("frame_times_s", "exposure_s"):
+        if key not in doc:
+            raise InputError("required key missing", path=path, field=key, expected="present", found="absent")
+    times = _number_list(doc["frame_times_s"], path, "frame_times_s")
+    steps = np.diff(times)
+    if (steps <= 0).any():
+        i = int(np.flatnonzero(steps <= 0)[0]) + 1
+        raise InputError("frame times not strictly increasing", path=path, field=f"frame_times_s[{i}]",
+                         expected=f"> {times[i - 1]:g}", found=f"{times[i]:g}")
+    exposure = _number(doc["exposure_s"], path, "exposure_s", low=0.0)
+
+    pump = doc.get("pump_energy_nj")
+    if pump is not None:
+        if isinstance(pump, list):
+            pump = _number_list(pump, path, "pump_energy_nj", low=0.0)
+        else:
+            pump = np.full(times.size, _number(pump, path, "pump_energy_nj", low=0.0, strict=False))
+        pump = _ro(pump)
+
+    cam = doc.get("camera", {})
+    if cam is None:
+        cam = {}
+    if not isinstance(cam, dict):
+        raise InputError("bad camera block", path=path, field="camera", expected="an object",
+                         found=type(cam).__name__)
+    camera = CameraModel(
+        offset_counts=_number(cam.get("offset_counts", 0.0), path, "camera.offset_counts"),
+        gain_counts_per_e=_number(cam.get("gain_counts_per_e", 1.0), path, "camera.gain_counts_per_e", low=0.0),
+        read_noise_e=_number(cam.get("read_noise_e", 0.0), path, "camera.read_noise_e", low=0.0, strict=False),
+        saturation_counts=_number(math.inf if cam.get("saturation_counts") is None else cam["saturation_counts"],
+                                  path, "camera.saturation_counts", low=0.0, allow_inf=True),
+    )
+    axes = {}
+    for key in ("wavelength", "wavelength_guess"):
+        block = doc.get(key)
+        axes[key] = None if block is None else _axis(block, path, key)
+    return Sidecar(path=path, frame_times_s=_ro(times), exposure_s=exposure, pump_energy_nj=pump,
+                   camera=camera, wavelength=axes["wavelength"], wavelength_guess=axes["wavelength_guess"])
+
+
+def check_sidecar(sidecar: Sidecar, stack) -> None:
+    """Check that a sidecar fits its stack (frame count, pump values, explicit axis length).
+
+    Raises
+    ------
+    InputError
+        Naming the sidecar, the key, the expected and the found count.
+    """
+    n, name = stack.n_frames, stack.path.name
+    m = len(sidecar.frame_times_s)
+    if m != n:
+        raise InputError("frame times do not match the stack", path=sidecar.path, field="frame_times_s",
+                         expected=f"{n} values (one per frame of {name})", found=f"{m} values")
+    if sidecar.pump_energy_nj is not None and len(sidecar.pump_energy_nj) != n:
+        raise InputError("pump energies do not match the stack", path=sidecar.path, field="pump_energy_nj",
+                         expected=f"one number or {n} values (one per frame of {name})",
+                         found=f"{len(sidecar.pump_energy_nj)} values")
+    for key in ("wavelength", "wavelength_guess"):
+        axis = getattr(sidecar, key)
+        if axis is not None and axis.n_pixels is not None and axis.n_pixels != stack.n_pixels:
+            raise InputError("explicit axis does not match the stack", path=sidecar.path,
+                             field=f"{key}.values_nm",
+                             expected=f"{stack.n_pixels} values (one per pixel of {name})",
+                             found=f"{axis.n_pixels} values")

@@ -1,0 +1,152 @@
+import base64
+import json
+import re
+from html.parser import HTMLParser
+
+import numpy as np
+import pandas as pd
+import pytest
+
+pytest.importorskip("matplotlib")
+
+from lasecyto import tables  # noqa: E402
+from lasecyto.features import summarize_cell  # noqa: E402
+from lasecyto.report import write_html_report  # noqa: E402
+
+N_FRAMES = 40
+DT_S = 15.0
+PERT_S = 292.5
+CELLS = [("cell-a1", "dish-1", "drug", 1.5e-3), ("cell-a2", "dish-1", "drug", 0.0),
+         ("cell-b1", "dish-2", "control", 0.0), ("cell-b2", "dish-2", "control & <vehicle>", 0.0)]
+
+
+def _make_tables(seed=0):
+    rng = np.random.default_rng(seed)
+    t = np.arange(N_FRAMES) * DT_S
+    lines, frames, cells = [], [], []
+    for cid, dish, cond, amp in CELLS:
+        q = np.where(t >= PERT_S, amp * (1 - np.exp(-(t - PERT_S) / 30.0)), 0.0) + rng.normal(0, 1e-5, N_FRAMES)
+        cf = pd.DataFrame({
+            "cell_id": cid, "frame": np.arange(N_FRAMES), "time_s": t, "n_lines": 3, "n_lasing": 3,
+            "total_area_counts": 3e4, "lasing": True, "fsr_nm": 2.0, "optical_length_um": 70.0,
+            "optical_length_err_um": 0.01, "relative_shift": q / 1.37, "relative_shift_err": 1e-5 / 1.37,
+            "delta_optical_length_um": 8 * q, "delta_optical_length_err_um": 8e-5,
+            "index_change": q, "index_change_err": 1e-5})
+        frames.append(cf)
+        res = summarize_cell(cf, perturbation_s=PERT_S, n_tracks=3)
+        cells.append({"cell_id": cid, "dish": dish, "condition": cond, "perturbation_s": PERT_S, **res})
+        for f in range(N_FRAMES):
+            for m in range(3):
+                lines.append({
+                    "cell_id": cid, "frame": f, "time_s": t[f], "line_id": m, "center_px": 100.0 + 50 * m,
+                    "center_err_px": 0.01, "center_nm": 610.0 + 2.0 * m + 0.6 * q[f], "center_err_nm": 2e-4,
+                    "fwhm_px": 2.0, "fwhm_nm": 0.05, "area_counts": 1e4 * (m + 1), "area_err_counts": 100.0,
+                    "amplitude_counts": 3e3, "background_counts": 10.0, "snr": 100.0, "chi2_red": 1.0,
+                    "lasing": True, "saturated": False, "fit_ok": True, "fit_message": "",
+                    "track_id": m, "mode_family": 0})
+    tracks = pd.DataFrame(lines)
+    return {"lines": tables.validate(tracks.drop(columns=["track_id", "mode_family"]), "lines"),
+            "tracks": tables.validate(tracks, "tracks"),
+            "cell_frames": tables.validate(pd.concat(frames, ignore_index=True), "cell_frames"),
+            "cells": tables.validate(pd.DataFrame(cells), "cells")}
+
+
+def _run_dir(tmp_path, tabs, record):
+    (tmp_path / "tables").mkdir()
+    for name, df in tabs.items():
+        df.to_parquet(tmp_path / "tables" / f"{name}.parquet")
+    (tmp_path / "run_record.json").write_text(json.dumps(record))
+    return tmp_path
+
+
+_RECORD = {
+    "experiment": {"name": "demo <dish> run", "synthetic": True, "description": "Two dishes, two conditions."},
+    "items": [{"item": "cell-a1", "status": "ok", "error": ""},
+              {"item": "cell-x9", "status": "failed", "error": "no lasing lines in any frame"}],
+}
+
+_VOID = {"meta", "img", "br", "hr", "link", "input"}
+
+
+class _Checker(HTMLParser):
+    """Balanced tags and the list of attribute values that could load something."""
+
+    def __init__(self):
+        super().__init__()
+        self.stack, self.sources, self.tags = [], [], set()
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.add(tag)
+        self.sources += [v for k, v in attrs if k in ("src", "href")]
+        if tag not in _VOID:
+            self.stack.append(tag)
+
+    def handle_endtag(self, tag):
+        assert self.stack and self.stack[-1] == tag, f"unbalanced </{tag}>"
+        self.stack.pop()
+
+
+def test_report_is_self_contained_html(tmp_path):
+    tabs = _make_tables()
+    assert bool(tabs["cells"]["changed"].iloc[0]) and not tabs["cells"]["changed"].iloc[1:].any()
+    run_dir = _run_dir(tmp_path, tabs, _RECORD)
+    path = write_html_report(run_dir)
+    assert path == run_dir / "report.html"
+    text = path.read_text(encoding="utf-8")
+    assert text.startswith("<!DOCTYPE html>")
+    checker = _Checker()
+    checker.feed(text)
+    checker.close()
+    assert checker.stack == []
+    assert "script" not in checker.tags and "<script" not in text.lower()
+    outside_images = re.sub(r"data:image/png;base64,[A-Za-z0-9+/=]+", "", text).lower()
+    assert not re.search(r"https?:|//|url\(|@import", outside_images)    # no external URLs
+    # every image is an inline PNG: 2 experiment figures + kymograph and trace for 4 cells
+    assert len(checker.sources) == 2 + 2 * 4
+    for src in checker.sources:
+        assert src.startswith("data:image/png;base64,")
+        assert base64.b64decode(src.split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
+    assert text.count('<img src="data:image/png;base64,') == 10
+    # content
+    assert "Synthetic data" in text
+    assert "demo &lt;dish&gt; run" in text and "control &amp; &lt;vehicle&gt;" in text
+    table = text[text.index('<table id="cells">'):]
+    table = table[: table.index("</table>")]
+    for cid, *_ in CELLS:
+        assert f">{cid}<" in table
+    assert table.count("<tr>") == 1 + len(CELLS)
+    assert "cell-x9" in text and "no lasing lines in any frame" in text
+    # drug: 1 of 2 flagged; Wilson 95 % interval of 1/2 is 0.09 - 0.91
+    assert "<td>0.50</td><td>0.09 &ndash; 0.91</td>" in text
+    # the flagged cell's panel comes first
+    panels = re.findall(r"<h3>([^<&]+?) &middot;", text)
+    assert panels[0].strip() == "cell-a1" and len(panels) == 4
+    assert [p.name for p in run_dir.iterdir() if p.name.endswith(".tmp")] == []
+
+
+def test_report_takes_tables_and_tolerates_a_sparse_record(tmp_path):
+    tabs = _make_tables(seed=1)
+    (tmp_path / "run_record.json").write_text(json.dumps({"items": []}))
+    path = write_html_report(tmp_path, tables={"cells": tabs["cells"], "cell_frames": tabs["cell_frames"]},
+                             title="My run")
+    text = path.read_text(encoding="utf-8")
+    assert "<title>My run</title>" in text and "Synthetic data" not in text
+    assert "No failed items" in text
+    # without lines or tracks: 2 experiment figures + one trace per cell
+    assert text.count('<img src="data:image/png;base64,') == 2 + 4
+    # a second write replaces the report
+    assert write_html_report(tmp_path, tables={"cells": tabs["cells"]}).read_text().count("<img") == 1
+
+
+def test_report_without_any_table_or_record(tmp_path):
+    text = write_html_report(tmp_path).read_text(encoding="utf-8")
+    assert "No cells table" in text and "<img" not in text
+
+
+def test_report_rejects_a_broken_record(tmp_path):
+    from lasecyto.exceptions import InputError
+
+    (tmp_path / "run_record.json").write_text("{not json")
+    with pytest.raises(InputError, match="run_record.json"):
+        write_html_report(tmp_path)
+    assert not (tmp_path / "report.html").exists()

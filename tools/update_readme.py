@@ -1,0 +1,44 @@
+"""Rewrite the generated sections of README.md (table schemas, verdict rule).
+
+Run from the repository root: ``.venv/bin/python tools/update_readme.py``.
+"""
+
+import re
+import textwrap
+from pathlib import Path
+
+from lasecyto import tables
+from lasecyto.features import CHANGE_RULE
+
+TITLES = {
+    "lines": "`lines`: one row per fitted line per frame per cell",
+    "tracks": "`tracks`: the lasing lines that were linked into mode tracks (plus `comb_index`)",
+    "cell_frames": "`cell_frames`: one row per cell and frame",
+    "cells": "`cells`: one row per cell (plus `quantity`, the series judged, and `note`)",
+}
+
+
+def replace(text, tag, body):
+    pattern = re.compile(rf"(<!-- {tag}:start -->\n).*?(<!-- {tag}:end -->)", re.S)
+    return pattern.sub(lambda m: m.group(1) + body + m.group(2), text)
+
+
+def main():
+    path = Path(__file__).resolve().parents[1] / "README.md"
+    text = path.read_text()
+    parts = []
+    for name in ("lines", "tracks", "cell_frames", "cells"):
+        schema = tables.describe(name)
+        if name == "tracks":
+            n_lines = len(tables.SCHEMAS["lines"])
+            rows = schema.splitlines()
+            schema = "\n".join(rows[:2] + ["| *all `lines` columns* | | | |"] + rows[2 + n_lines:])
+        parts.append(f"#### {TITLES[name]}\n\n{schema}\n")
+    text = replace(text, "tables", "\n".join(parts))
+    rule = "\n".join(textwrap.wrap(" ".join(CHANGE_RULE.split()), 96))
+    text = replace(text, "rule", rule + "\n")
+    path.write_text(text)
+
+
+if __name__ == "__main__":
+    main()
