@@ -59,6 +59,18 @@ def _parser():
     rep = sub.add_parser("report", help="(re)write the HTML report of a run directory",
                          description="Write RUN_DIR/report.html from the run's tables and record.")
     rep.add_argument("run_dir", type=Path, help="run directory written by 'lasecyto run'")
+
+    lin = sub.add_parser("lines", help="fit every line of one spectral stack into a lines table",
+                         description="Detect and fit every laser line of every frame of a spectral stack "
+                                     "and write the lines table (Parquet and CSV) to --out.")
+    lin.add_argument("stack", type=Path, help="spectral stack (TIFF, CSV or NPZ)")
+    lin.add_argument("--sidecar", type=Path, default=None, metavar="FILE",
+                     help="sidecar metadata (default: the stack path with suffix .json, if present)")
+    lin.add_argument("--lamp", type=Path, default=None, metavar="FILE",
+                     help="lamp frame for the wavelength axis (needs --reference and a wavelength_guess)")
+    lin.add_argument("--reference", default=None, metavar="SET", help="reference line set, e.g. 'Ne I'")
+    lin.add_argument("--recipe", type=Path, default=None, metavar="FILE", help="stage parameters (TOML)")
+    lin.add_argument("--out", type=Path, required=True, metavar="TABLE", help="output table path stem")
     return parser
 
 
@@ -118,6 +130,16 @@ def main(argv=None) -> int:
             from .report import write_html_report
             path = write_html_report(args.run_dir)
             print(path)
+            return EXIT_OK
+        if args.command == "lines":
+            from .io import write_table
+            from .pipeline import load_recipe
+            from .pipeline._lines_only import fit_stack
+            params = load_recipe(args.recipe) if args.recipe is not None else None
+            table = fit_stack(args.stack, sidecar=args.sidecar, parameters=params, lamp=args.lamp,
+                              reference=args.reference)
+            for path in write_table(table, args.out, name="lines"):
+                print(path)
             return EXIT_OK
         from .pipeline import run_experiment
         if args.command == "demo":

@@ -9,8 +9,8 @@ from ._shapes import check_shape, pixel_terms
 
 __all__ = ["crlb_center_px"]
 
-#: variance floor (e^2) of a pixel whose model variance is zero (no read noise, empty pixel)
-VARIANCE_FLOOR_E2 = 1e-6
+#: variance floor (e^2): keeps a pixel with (nearly) zero or negative model finite-weighted
+VARIANCE_FLOOR_E2 = 0.5
 
 
 def model_variance(total_e, read_noise_e):
@@ -18,11 +18,11 @@ def model_variance(total_e, read_noise_e):
     return np.maximum(np.maximum(total_e, 0.0) + read_noise_e ** 2, VARIANCE_FLOOR_E2)
 
 
-def line_jacobian(x_px, x_ref_px, centers_px, fwhms_px, areas_e, shape):
-    """Line signal and Jacobian of K profiles plus a linear background.
+def line_jacobian(x_px, x_ref_px, centers_px, fwhms_px, areas_e, shape, bg_degree=1):
+    """Line signal and Jacobian of K profiles plus a polynomial background.
 
-    Parameters are ordered ``(c_1..c_K, w_1..w_K, A_1..A_K, b0, b1)``; the local
-    background is ``b0 + b1 * (x - x_ref)``.
+    Parameters are ordered ``(c_1..c_K, w_1..w_K, A_1..A_K, b0, ..., b_D)``; the
+    local background is ``sum_j b_j (x - x_ref)**j`` with ``D = bg_degree``.
 
     Parameters
     ----------
@@ -34,7 +34,7 @@ def line_jacobian(x_px, x_ref_px, centers_px, fwhms_px, areas_e, shape):
     -------
     lines_e : array (..., L)
         Sum of the line profiles (no background).
-    jac : array (..., L, 3K + 2)
+    jac : array (..., L, 3K + D + 1)
     amp_frac : array (..., K, L)
         Pixel fractions of each line (for peak values).
     """
@@ -44,18 +44,23 @@ def line_jacobian(x_px, x_ref_px, centers_px, fwhms_px, areas_e, shape):
     frac, dc, dw = pixel_terms(x_px[..., None, :], c, w, shape)
     lines = np.einsum("...kl,...kl->...l", frac, np.broadcast_to(a, frac.shape))
     k = centers_px.shape[-1]
-    jac = np.empty(x_px.shape + (3 * k + 2,))
+    jac = np.empty(x_px.shape + (3 * k + bg_degree + 1,))
     jac[..., :k] = np.moveaxis(a * dc, -2, -1)
     jac[..., k:2 * k] = np.moveaxis(a * dw, -2, -1)
     jac[..., 2 * k:3 * k] = np.moveaxis(frac, -2, -1)
     jac[..., 3 * k] = 1.0
-    jac[..., 3 * k + 1] = x_px - x_ref_px
+    dx = x_px - x_ref_px
+    power = np.ones_like(dx)
+    for j in range(1, bg_degree + 1):
+        power = power * dx
+        jac[..., 3 * k + j] = power
     return lines, jac, frac
 
 
 def fisher_matrix(jac, weights):
     """Stacked Fisher matrices J^T diag(weights) J, shape (..., P, P)."""
-    return np.einsum("...lp,...l,...lq->...pq", jac, weights, jac)
+    jw = jac * weights[..., None]
+    return np.matmul(np.swapaxes(jw, -1, -2), jac)
 
 
 def invert_fisher(fisher, *, rcond=1e-13):

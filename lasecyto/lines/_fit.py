@@ -16,12 +16,16 @@ __all__ = ["LineFits", "fit_lines", "is_lasing"]
 
 #: lines closer than this many FWHM (of the wider of the two) are fitted jointly
 BLEND_SEPARATION_FWHM = 1.5
+#: lines whose separation is below this fraction of the larger fit half window are fitted jointly
+JOINT_OVERLAP = 2.0
+#: largest number of lines in one jointly fitted group
+MAX_GROUP = 4
 #: convergence: the last accepted step moved every parameter by less than this many sigma
-STEP_TOL_SIGMA = 1e-3
+STEP_TOL_SIGMA = 1e-2
 #: chi-square improvement needed to split one fitted line into a blend of two
 BLEND_DCHI2 = 25.0
 #: window lengths are rounded up to these sizes so that few batches are needed
-_WINDOW_SIZES = np.unique(np.round(8 * 1.25 ** np.arange(30)).astype(int))
+_WINDOW_SIZES = np.unique(np.round(16 * 1.5 ** np.arange(20)).astype(int))
 
 
 @dataclass(frozen=True)
@@ -93,6 +97,12 @@ def _initial_estimates(resid, finite, spec, pix, fwhm_guess, wmin, wmax):
     inside = (cols >= 0) & (cols < n)
     colc = np.clip(cols, 0, n - 1)
     r = np.where(inside & finite[spec[:, None], colc], resid[spec[:, None], colc], -np.inf)
+    # local level: the lower of the two outermost pixel pairs (a neighbour line may sit on one side)
+    side_l = np.where(np.isfinite(r[:, :2]), r[:, :2], np.inf).mean(axis=1)
+    side_r = np.where(np.isfinite(r[:, -2:]), r[:, -2:], np.inf).mean(axis=1)
+    level = np.minimum(side_l, side_r)
+    level = np.where(np.isfinite(level), level, 0.0)
+    r = r - level[:, None]
     mid = reach
     r0, rl, rr = r[:, mid], r[:, mid - 1], r[:, mid + 1]
     rl = np.where(np.isfinite(rl), rl, r0)
@@ -119,18 +129,28 @@ def _initial_estimates(resid, finite, spec, pix, fwhm_guess, wmin, wmax):
     fwhm = crossing(right_j, 1) + crossing(left_j, -1)
     fwhm = np.where((r0 > 0) & np.isfinite(fwhm), fwhm, fwhm_guess)
     fwhm = np.clip(fwhm, max(wmin, 1.0), wmax)
-    return center, fwhm, np.maximum(r0, 0.0)
+    return center, fwhm, np.maximum(r0, 0.0), level
 
 
-def _evaluate(theta, k, x, xref, y, extra, mask, rn, shape):
-    """Model, Jacobian, variance-weighted normal equations of a batch of windows."""
-    lines, jac, _ = line_jacobian(x, xref, theta[:, :k], theta[:, k:2 * k], theta[:, 2 * k:3 * k], shape)
-    mu = lines + theta[:, 3 * k:3 * k + 1] + theta[:, 3 * k + 1:] * (x - xref)
+def _evaluate(theta, k, x, xref, y, extra, mask, rn, shape, observed=True):
+    """Model, curvature matrix and score of a batch of windows.
+
+    With ``observed=True`` the curvature is the Gauss-Newton part of the
+    observed Hessian of the shifted-Poisson likelihood, weights ``y'/m**2``
+    (clipped to ``[0.5, 2] / m``), which converges in a few steps even where the
+    model misfits; with ``observed=False`` it is the Fisher information
+    (weights ``1/m``), used for the covariance.
+    """
+    deg = theta.shape[1] - 3 * k - 1
+    lines, jac, _ = line_jacobian(x, xref, theta[:, :k], theta[:, k:2 * k], theta[:, 2 * k:3 * k], shape,
+                                  deg)
+    mu = lines + np.matmul(jac[:, :, 3 * k:], theta[:, 3 * k:, None])[..., 0]
     total = model_variance(mu + extra, rn)  # expected signal + read noise variance
     w = np.where(mask, 1.0 / total, 0.0)
     resid = np.where(mask, y - mu, 0.0)
-    grad = np.einsum("glp,gl->gp", jac, w * resid)
-    fisher = fisher_matrix(jac, w)
+    grad = np.matmul(np.swapaxes(jac, 1, 2), (w * resid)[..., None])[..., 0]
+    wh = w * np.clip(1.0 + resid * w, 0.5, 2.0) if observed else w  # y'/m = 1 + (y - mu)/m
+    fisher = np.matmul(np.swapaxes(jac * wh[..., None], 1, 2), jac)
     return total, fisher, grad, w, resid
 
 
@@ -188,8 +208,8 @@ def _lm(theta, k, x, xref, y, extra, mask, rn, shape, wmin, wmax, max_iterations
         done = (accept & small) | (~accept & (lam[a] > 1e8))
         converged[a[done]] = True
         active = a[~done & (lam[a] < 1e12)]
+    _, fisher, _, w, resid = _evaluate(theta, k, x, xref, y, extra, mask, rn, shape, observed=False)
     cov, singular = invert_fisher(fisher)
-    _, _, _, w, resid = _evaluate(theta, k, x, xref, y, extra, mask, rn, shape)
     chi2 = np.sum(w * resid ** 2, axis=1)
     return theta, cov, converged, singular, chi2
 
@@ -235,7 +255,7 @@ def _neighbour_model(fit, spec, group, win_lo, win_len, n_pix, window_half_px, s
 
     A line outside a group contributes where its own fit window overlaps the
     group's window; farther lines leave only smooth wings, taken up by the
-    local linear background.  Returns ``(model, touched)`` with ``model`` of
+    local polynomial background.  Returns ``(model, touched)`` with ``model`` of
     shape (n_groups, max window length).
     """
     n_groups = win_lo.size
@@ -279,7 +299,7 @@ def _store(fit, flags, theta, cov, converged, singular, chi2, k, members, mask, 
            base_win, x, xref, saturation_e, wmin, wmax, shape):
     """Write the results of one batch of groups into the per-line output arrays."""
     c, w, a = theta[:, :k], theta[:, k:2 * k], theta[:, 2 * k:3 * k]
-    b0, b1 = theta[:, 3 * k:3 * k + 1], theta[:, 3 * k + 1:]
+    bg_coef = theta[:, 3 * k:]
     var = np.einsum("gii->gi", cov)
     with np.errstate(invalid="ignore"):
         err = np.sqrt(var)
@@ -318,7 +338,11 @@ def _store(fit, flags, theta, cov, converged, singular, chi2, k, members, mask, 
     fit["area_e"][members] = a
     fit["area_err_e"][members] = err[:, 2 * k:3 * k]
     fit["amplitude_e"][members] = a * frac_peak
-    fit["background_e"][members] = bl + b0 + b1 * (c - xref)
+    dxc = c - xref
+    local_bg = np.zeros_like(c)
+    for j in range(bg_coef.shape[1] - 1, -1, -1):  # Horner
+        local_bg = local_bg * dxc + bg_coef[:, j:j + 1]
+    fit["background_e"][members] = bl + local_bg
     fit["chi2_red"][members] = (chi2 / dof)[:, None]
     flags["saturated"][members] = saturated[:, None]
     flags["message"][members] = reason
@@ -334,7 +358,7 @@ def _empty_fits():
 
 
 def _fit_block(base, raw, filled, finite, read_noise_e, saturation_e, shape, snr_min, fwhm_guess_px,
-               window_half_px, max_iterations, min_fwhm_px, max_fwhm_px):
+               window_half_px, max_iterations, min_fwhm_px, max_fwhm_px, n_bg):
     """Detect and fit all lines of a block above a given baseline."""
     n_pix = raw.shape[1]
     det = _detect(filled, base, finite, float(read_noise_e), float(snr_min), float(fwhm_guess_px), 1.5)
@@ -343,19 +367,26 @@ def _fit_block(base, raw, filled, finite, read_noise_e, saturation_e, shape, snr
     if n_lines == 0:
         return spec, {}, {}
     resid = filled - base
-    c0, w0, h0 = _initial_estimates(resid, finite, spec, pix, fwhm_guess_px, min_fwhm_px, max_fwhm_px)
+    c0, w0, h0, lev0 = _initial_estimates(resid, finite, spec, pix, fwhm_guess_px, min_fwhm_px,
+                                          max_fwhm_px)
     frac0, _, _ = pixel_terms(np.round(c0), c0, w0, shape)
     a0 = h0 / np.maximum(frac0, 1e-12)
 
-    # blend groups: consecutive detections of a spectrum closer than 1.5 FWHM
+    # groups fitted jointly: consecutive detections of a spectrum closer than 1.5 FWHM (blends), or
+    # whose cores lie inside each other's fit windows (a bright neighbour's core is not a smooth
+    # background); at most MAX_GROUP lines per group
+    half0 = _half_window(w0, window_half_px, shape)
+    gap = c0[1:] - c0[:-1]
+    near = (gap < BLEND_SEPARATION_FWHM * np.maximum(w0[1:], w0[:-1])) | (
+        gap < JOINT_OVERLAP * np.maximum(half0[1:], half0[:-1]))
     join = np.zeros(n_lines, dtype=bool)
-    join[1:] = (spec[1:] == spec[:-1]) & (
-        (c0[1:] - c0[:-1]) < BLEND_SEPARATION_FWHM * np.maximum(w0[1:], w0[:-1]))
+    join[1:] = (spec[1:] == spec[:-1]) & near
+    run_start = np.maximum.accumulate(np.where(~join, np.arange(n_lines), 0))
+    join &= ((np.arange(n_lines) - run_start) % MAX_GROUP) != 0  # split long chains
     group = np.cumsum(~join) - 1
     first = np.flatnonzero(~join)
     n_groups = first.size
     size = np.diff(np.append(first, n_lines))
-    half0 = _half_window(w0, window_half_px, shape)
     win_lo = np.maximum(np.floor(np.minimum.reduceat(c0 - half0, first)).astype(int), 0)
     win_hi = np.minimum(np.ceil(np.maximum.reduceat(c0 + half0, first)).astype(int), n_pix - 1)
     win_len = win_hi - win_lo + 1
@@ -394,20 +425,21 @@ def _fit_block(base, raw, filled, finite, read_noise_e, saturation_e, shape, snr
                 y = y - other
                 extra = base_win + other
             xref = (lo + (length - 1) / 2.0)[:, None]
-            theta0 = np.concatenate([start[0][members], start[1][members], start[2][members],
-                                     np.zeros((gsel.size, 2))], axis=1)
+            bg0 = np.zeros((gsel.size, n_bg))
+            bg0[:, 0] = lev0[members].min(axis=1)
+            theta0 = np.concatenate([start[0][members], start[1][members], start[2][members], bg0], axis=1)
             theta, cov, conv, sing, chi2 = _lm(theta0, k, x, xref, y, extra, mask, rn, shape,
                                                min_fwhm_px, max_fwhm_px, int(max_iterations))
             _store(fit, flags, theta, cov, conv, sing, chi2, k, members, mask, inside, finite_win, raw_win,
                    base_win, x, xref, saturation_e, min_fwhm_px, max_fwhm_px, shape)
     spec, fit, flags = _split_blends(spec, fit, flags, size, first, win_lo, win_len, resid, base, finite, raw,
                                      rn, shape, min_fwhm_px, max_fwhm_px, max_iterations, saturation_e,
-                                     snr_min)
+                                     snr_min, lev0, n_bg)
     return spec, fit, flags
 
 
 def _split_blends(spec, fit, flags, size, first, win_lo, win_len, resid, base, finite, raw, rn, shape, wmin,
-                  wmax, max_iterations, saturation_e, snr_min):
+                  wmax, max_iterations, saturation_e, snr_min, lev0, n_bg):
     """Refit single lines that a blend of two explains much better.
 
     Two lines closer than about 1.5 FWHM leave a single maximum after the
@@ -417,7 +449,7 @@ def _split_blends(spec, fit, flags, size, first, win_lo, win_len, resid, base, f
     """
     g = np.flatnonzero(size == 1)
     line = first[g]
-    dof = np.maximum(win_len[g] - 5, 1)
+    dof = np.maximum(win_len[g] - 4 - n_bg, 1)
     cand = ((flags["message"][line] == "") & (fit["chi2_red"][line] > 1 + 5 * np.sqrt(2.0 / dof))
             & (fit["area_e"][line] / fit["area_err_e"][line] > 2 * snr_min))
     g, line = g[cand], line[cand]
@@ -436,7 +468,8 @@ def _split_blends(spec, fit, flags, size, first, win_lo, win_len, resid, base, f
         mask = inside & (finite_win > 0)
         xref = (lo + (length - 1) / 2.0)[:, None]
         c, w, a = fit["center_px"][li], fit["fwhm_px"][li], fit["area_e"][li]
-        z = np.zeros((li.size, 2))
+        z = np.zeros((li.size, n_bg))
+        z[:, 0] = lev0[li]
         one = _lm(np.column_stack([c, w, a, z]), 1, x, xref, y, base_win, mask, rn, shape, wmin, wmax,
                   max_iterations)
         half_sep = 0.4 * w
@@ -471,14 +504,14 @@ def _split_blends(spec, fit, flags, size, first, win_lo, win_len, resid, base, f
 
 def fit_lines(spectra_e, *, read_noise_e=0.0, saturation_e=np.inf, shape="lorentzian", snr_min=5.0,
               fwhm_guess_px=2.5, window_half_px=None, baseline="snip", baseline_window_px=30,
-              max_iterations=30, min_fwhm_px=0.5, max_fwhm_px=20.0):
+              max_iterations=30, min_fwhm_px=0.5, max_fwhm_px=20.0, background_degree=2):
     """Detect and fit every line of a block of spectra in one batched computation.
 
     Each spectrum's baseline is estimated and removed, lines are found with
     :func:`detect_lines`, and every line (or blend of lines closer than 1.5 FWHM,
     fitted jointly) is fitted in a window of ``+-window_half_px`` around it with
-    the pixel-integrated profile plus a local linear background
-    ``b0 + b1 (x - x_ref)``.  All windows of the block are fitted together by
+    the pixel-integrated profile plus a local polynomial background
+    ``sum_j b_j (x - x_ref)**j`` (degree ``background_degree``).  All windows of the block are fitted together by
     Levenberg-Marquardt Fisher scoring of the likelihood with variance
     ``max(mu + baseline, 0) + read_noise_e**2`` re-evaluated at every step
     (iteratively reweighted: Poisson maximum likelihood, shifted for read noise).
@@ -499,15 +532,23 @@ def fit_lines(spectra_e, *, read_noise_e=0.0, saturation_e=np.inf, shape="lorent
     window_half_px : float, optional
         Half width of the fit window; default ``max(6, 5 FWHM)`` for a Lorentzian
         and ``max(4, 3 FWHM)`` for a Gaussian, from each line's initial width.
-    baseline : {"snip", "asls"}, array_like or None
-        Baseline method (default options, SNIP window ``baseline_window_px``),
-        an explicit baseline of the block's shape, or None for none.
+    baseline : {"snip", "asls", "local"}, array_like or None
+        Global baseline removed before detection and fitting: SNIP (window
+        ``baseline_window_px``), AsLS (default options), an explicit baseline of
+        the block's shape, or ``"local"``/None for none, in which case the
+        fluorescence is carried only by each window's polynomial background
+        (fastest; the matched filter of the detection is blind to a local
+        constant and slope).
     baseline_window_px : int
         SNIP window.
     max_iterations : int
         Iterations of the scoring loop.
     min_fwhm_px, max_fwhm_px : float
         Width bounds; a fit ending on a bound is flagged.
+    background_degree : int
+        Degree (0-3) of the polynomial background fitted jointly with the lines
+        in every window, on top of the global baseline (default 2: a quadratic
+        absorbs the curvature of a fluorescence band under a broad line).
 
     Returns
     -------
@@ -518,12 +559,16 @@ def fit_lines(spectra_e, *, read_noise_e=0.0, saturation_e=np.inf, shape="lorent
     raw, _ = as_block(spectra_e)
     n_pix = raw.shape[1]
     filled, finite = fill_nonfinite(raw)
-    if baseline is None:
+    if isinstance(background_degree, bool) or background_degree not in (0, 1, 2, 3):
+        raise InputError("local background degree out of range", field="background_degree",
+                         expected="0, 1, 2 or 3", found=repr(background_degree))
+    if baseline is None or (isinstance(baseline, str) and baseline == "local"):
         base = np.zeros_like(filled)
     elif isinstance(baseline, str):
         if baseline not in BASELINE_METHODS:
             raise InputError("unknown baseline method", field="baseline",
-                             expected=" or ".join(repr(m) for m in BASELINE_METHODS) + ", an array or None",
+                             expected=" or ".join(repr(m) for m in BASELINE_METHODS)
+                             + ", 'local', an array or None",
                              found=repr(baseline))
         base = (estimate_baseline(filled, method="snip", window_px=baseline_window_px)
                 if baseline == "snip" else estimate_baseline(filled, method="asls"))
@@ -534,7 +579,8 @@ def fit_lines(spectra_e, *, read_noise_e=0.0, saturation_e=np.inf, shape="lorent
                              expected=f"shape {raw.shape}", found=f"shape {base.shape}")
         base, _ = fill_nonfinite(base)
     args = (raw, filled, finite, float(read_noise_e), saturation_e, shape, float(snr_min), float(fwhm_guess_px),
-            window_half_px, int(max_iterations), float(min_fwhm_px), float(max_fwhm_px))
+            window_half_px, int(max_iterations), float(min_fwhm_px), float(max_fwhm_px),
+            int(background_degree) + 1)
     spec, fit, flags = _fit_block(base, *args)
     if spec.size == 0:
         return _empty_fits()

@@ -1,6 +1,7 @@
 """Batch runs: per-cell processing, the experiment runner and its run record."""
 
 from ._cell import CellJob, CellResult, lines_table, process_cell
+from ._lines_only import fit_stack
 from ._params import DEFAULT_PARAMETERS, load_recipe, resolve_parameters
 from ._run import RunResult, calibrate_lamp, run_experiment
 
@@ -10,6 +11,7 @@ __all__ = [
     "CellResult",
     "RunResult",
     "calibrate_lamp",
+    "fit_stack",
     "lines_table",
     "load_recipe",
     "process_cell",

@@ -1,0 +1,122 @@
+"""The line stage alone: every line of a spectral stack, as a ``lines`` table.
+
+For users who want fitted lines without tracking, cavity inversion or verdicts
+(``lasecyto lines STACK --out TABLE``).
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .. import tables
+from ..calibration import WavelengthAxis, reference_lines, solve_dispersion
+from ..exceptions import InputError
+from ..io import CameraModel, check_sidecar, default_sidecar_path, read_sidecar, read_stack
+from ..lines import fit_lines
+from ._cell import lines_table
+from ._params import resolve_parameters
+
+__all__ = ["fit_stack"]
+
+
+def _lamp_axis(lamp_path, reference, sidecar, camera, calib):
+    if reference is None:
+        raise InputError("a lamp frame needs its reference line set", field="reference",
+                         expected="a set name such as 'Ne I'", found="none")
+    guess = None if sidecar is None else sidecar.wavelength_guess
+    if guess is None or guess.polynomial_nm is None:
+        raise InputError("lamp calibration needs a nominal axis", path=None if sidecar is None else sidecar.path,
+                         field="wavelength_guess", expected="polynomial_nm coefficients in the sidecar",
+                         found="none")
+    with read_stack(lamp_path) as lamp:
+        raw = lamp.read_rows(0, lamp.n_frames).astype(float)
+        n_rows = lamp.n_rows
+    spectrum_e = (raw.sum(axis=1).mean(axis=0) - camera.offset_counts * n_rows) / camera.gain_counts_per_e
+    ref = reference_lines(reference)
+    solution = solve_dispersion(spectrum_e, ref["wavelength_air_nm"].to_numpy(),
+                                guess_nm=tuple(guess.polynomial_nm), degree=calib["degree"],
+                                read_noise_e=camera.read_noise_e * math.sqrt(n_rows),
+                                clip_sigma=calib["clip_sigma"], snr_min=calib["snr_min"],
+                                reference_intensity=ref["relative_intensity"].to_numpy())
+    return solution.axis()
+
+
+def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference=None, cell_id=None,
+              progress=None) -> pd.DataFrame:
+    """Fit every line of every frame of a spectral stack.
+
+    Parameters
+    ----------
+    stack_path : str or Path
+        Spectral stack (any format :func:`lasecyto.io.read_stack` reads).
+    sidecar : str or Path, optional
+        Sidecar metadata (frame times, camera, axis); default: the stack path
+        with suffix ``.json`` when that file exists.  Without a sidecar the
+        camera is taken as 1 count per photoelectron, no offset, no read noise,
+        and ``time_s`` is NaN.
+    parameters : dict, optional
+        Stage parameters overriding the defaults (``{"lines": {...}, "lasing":
+        {...}, "calibration": {...}}``), as in a recipe.
+    lamp, reference : optional
+        Lamp frame (a stack) and its reference line set (e.g. ``"Ne I"``),
+        calibrated against the sidecar's ``wavelength_guess`` when the sidecar
+        and the stack carry no wavelength axis.
+    cell_id : str, optional
+        Value of the ``cell_id`` column (default: the stack file stem).
+    progress : callable, optional
+        Called as ``progress(frames_done, n_frames)`` after every block.
+
+    Returns
+    -------
+    pandas.DataFrame
+        The validated ``lines`` table, one row per fitted line (failed fits
+        included with ``fit_ok=False`` and their reason).
+    """
+    p = resolve_parameters(parameters or {}, source="parameters")
+    lp = p["lines"]
+    stack_path = Path(stack_path)
+    if sidecar is None and default_sidecar_path(stack_path).is_file():
+        sidecar = default_sidecar_path(stack_path)
+    side = None if sidecar is None else read_sidecar(sidecar)
+    camera = CameraModel() if side is None else side.camera
+    cell = stack_path.stem if cell_id is None else str(cell_id)
+    with read_stack(stack_path) as stack:
+        if side is not None:
+            check_sidecar(side, stack)
+        if side is not None and side.wavelength is not None:
+            axis = side.wavelength
+        elif stack.axis_nm is not None:
+            axis = WavelengthAxis(values_nm=tuple(stack.axis_nm), medium=stack.axis_medium or "vacuum")
+        elif lamp is not None:
+            axis = _lamp_axis(lamp, reference, side, camera, p["calibration"])
+        else:
+            raise InputError("no wavelength axis for the stack", path=stack_path, field="wavelength",
+                             expected="an axis in the sidecar or the stack, or --lamp with --reference",
+                             found="none")
+        n_rows, n_frames = stack.n_rows, stack.n_frames
+        times = (np.full(n_frames, np.nan) if side is None
+                 else np.asarray(side.frame_times_s, dtype=float))
+        offset = camera.offset_counts * n_rows
+        read_noise = camera.read_noise_e * math.sqrt(n_rows)
+        parts = []
+        block = int(lp["block_frames"])
+        for start in range(0, n_frames, block):
+            stop = min(start + block, n_frames)
+            raw = stack.read_rows(start, stop)
+            saturated = (raw >= camera.saturation_counts).any(axis=1)
+            spectra_e = (raw.sum(axis=1, dtype=float) - offset) / camera.gain_counts_per_e
+            fits = fit_lines(spectra_e, read_noise_e=read_noise, shape=lp["shape"], snr_min=lp["snr_min"],
+                             fwhm_guess_px=lp["fwhm_guess_px"], baseline=lp["baseline"],
+                             baseline_window_px=lp["baseline_window_px"])
+            parts.append(lines_table(fits, frame=np.arange(start, stop), time_s=times[start:stop],
+                                     cell_id=cell, axis=axis, gain_counts_per_e=camera.gain_counts_per_e,
+                                     saturated=saturated, lasing_max_fwhm_px=p["lasing"]["max_fwhm_px"],
+                                     lasing_snr_min=p["lasing"]["snr_min"]))
+            if progress is not None:
+                progress(stop, n_frames)
+    table = pd.concat(parts, ignore_index=True) if parts else tables.empty("lines")
+    return tables.validate(table, "lines")
