@@ -156,8 +156,8 @@ def _fit_windows(y, centres, half_px, sigma0_px, read_noise_e):
     # Inflate by the reduced chi-square only where the model is demonstrably poor
     # (p < 0.001), so that errors of good fits stay those of the noise model.
     poor = chi2_red > stats.chi2.isf(1e-3, dof) / dof
-    cov *= np.where(poor, chi2_red, 1.0)[:, None, None]
-    return theta, cov, chi2_red
+    inflation = np.where(poor, chi2_red, 1.0)
+    return theta, cov * inflation[:, None, None], chi2_red, inflation
 
 
 def find_lamp_peaks(spectrum_e, *, read_noise_e=0.0, snr_min=10.0, fwhm_guess_px=2.5):
@@ -186,7 +186,8 @@ def find_lamp_peaks(spectrum_e, *, read_noise_e=0.0, snr_min=10.0, fwhm_guess_px
         (its standard error from the fit covariance, scaled by the square root of the
         reduced chi-square where that is improbably large, p < 0.001), ``amplitude_e``
         (peak height of the Gaussian above the constant, e per pixel), ``fwhm_px`` and
-        ``snr``.
+        ``snr`` (fitted area over its standard error under the noise model alone, so that
+        a bright line with a non-Gaussian profile is not rejected).
     """
     y = _as_spectrum(spectrum_e)
     read_noise_e = _positive(read_noise_e, "read_noise_e", allow_zero=True)
@@ -215,15 +216,19 @@ def find_lamp_peaks(spectrum_e, *, read_noise_e=0.0, snr_min=10.0, fwhm_guess_px
         return pd.DataFrame({c: np.empty(0) for c in _PEAK_COLUMNS})
 
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):   # bad trial steps are rejected
-        theta, cov, _ = _fit_windows(y, cand, half, sigma0, read_noise_e)
+        theta, cov, _, inflation = _fit_windows(y, cand, half, sigma0, read_noise_e)
     x0, s, area = theta[:, 0], theta[:, 1], theta[:, 2]
     var_x = cov[:, 0, 0]
     var_a = cov[:, 2, 2]
     ok = (np.isfinite(theta).all(axis=1) & np.isfinite(var_x) & (var_x > 0) & (var_a > 0)
           & (area > 0) & (s > 0.15 * sigma0) & (s < 5.0 * sigma0)
           & (np.abs(x0 - cand) <= half / 2) & (x0 > -0.5) & (x0 < y.size - 0.5))
+    # The detection statistic uses the noise-model error of the area (not inflated by
+    # the misfit): a bright line whose profile is not Gaussian (a flat-topped slit image)
+    # is still a line.
+    var_a_noise = var_a / inflation
     with np.errstate(invalid="ignore", divide="ignore"):
-        snr = np.where(ok, area / np.sqrt(np.where(var_a > 0, var_a, np.nan)), 0.0)
+        snr = np.where(ok, area / np.sqrt(np.where(var_a > 0, var_a_noise, np.nan)), 0.0)
     ok &= snr >= snr_min
     sel = np.flatnonzero(ok)
 
