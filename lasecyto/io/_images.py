@@ -11,6 +11,7 @@ import numpy as np
 import tifffile
 
 from ..exceptions import InputError
+from ._tiff import try_memmap
 
 __all__ = ["ImageStack", "read_image_stack"]
 
@@ -140,12 +141,9 @@ class ImageStack:
                 raise InputError("truncated TIFF", path=path, expected=f"{need} bytes of image data",
                                  found=f"file ends at {size} bytes")
             if self._memmap:
-                try:
-                    mm = tifffile.memmap(path, mode="r", series=0)
-                except (ValueError, OSError):
-                    mm = None
-                if mm is not None and mm.size == math.prod(self.shape):
-                    self._data = mm.reshape(self.shape)
+                mm = try_memmap(path, self.shape)
+                if mm is not None:
+                    self._data = mm
                     self.memmapped = True
             else:
                 self._offset = int(series.dataoffset)

@@ -38,6 +38,15 @@ def _declared_pages(tif, series, page_size):
     return max(counts), ndim
 
 
+
+def try_memmap(path, shape):
+    """The first series of a TIFF memory-mapped with ``shape``, or None when it cannot be mapped."""
+    try:
+        mm = tifffile.memmap(path, mode="r", series=0)
+    except (ValueError, OSError):
+        return None
+    return mm.reshape(shape) if mm.size == math.prod(shape) else None
+
 class TiffSource:
     """Frames of a TIFF stack as a ``(T, R, N)`` view, read lazily.
 
@@ -116,12 +125,9 @@ class TiffSource:
         self._cache = None
         self._pages = None
         self.memmapped = False
-        try:
-            mm = tifffile.memmap(path, mode="r", series=0)
-        except (ValueError, OSError):
-            mm = None
-        if mm is not None and mm.size == math.prod(self.shape):
-            self._data = mm.reshape(self.shape)
+        mm = try_memmap(path, self.shape)
+        if mm is not None:
+            self._data = mm
             self.memmapped = True
         else:
             self._data = None

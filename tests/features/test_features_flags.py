@@ -5,65 +5,10 @@ import pandas as pd
 import pytest
 
 from lasecyto.exceptions import InputError
-from lasecyto.features import benjamini_hochberg, cell_features, flag_cells, relative_to_controls, wilson_interval
+from lasecyto.features import benjamini_hochberg, flag_cells, relative_to_controls, wilson_interval
 
-# --- in-test generator of cell_frames-like tables with known truth ---------------------------------
-# Response and drift ranges come from the synthetic scenario of lasecyto.synth (its SCENARIO constants);
-# the per-frame measurement noise (1-3e-6 in index) is what the pipeline reaches on that scenario.
-from lasecyto.synth._scenario import SCENARIO
+from cellgen import make_experiment
 
-
-def make_cell_frames(cell_id, *, rng, responder, n_frames=60, dt_s=10.0, perturbation_s=200.0,
-                     dish_length_um=27.66, bleach_tau_s=5000.0):
-    """One cell's cell_frames table and its truth (onset_s, amplitude, tau_s)."""
-    sc = SCENARIO
-    t = np.arange(n_frames) * dt_s
-    drift = np.concatenate([[0.0], np.cumsum(sc["drift_rms"] / np.sqrt(n_frames - 1)
-                                             * rng.standard_normal(n_frames - 1))])
-    amp, tau, lag = rng.uniform(*sc["response_amplitude"]), rng.uniform(*sc["response_tau_s"]), \
-        rng.uniform(*sc["response_lag_s"])
-    onset = perturbation_s + lag
-    resp = amp * (1 - np.exp(-np.clip(t - onset, 0, None) / tau)) if responder else np.zeros(n_frames)
-    sd = rng.uniform(1e-6, 3e-6)
-    dn = drift + resp + sd * rng.standard_normal(n_frames)
-    dn -= dn[t < perturbation_s].mean()
-    lasing = rng.random(n_frames) >= sc["dropout_probability"]
-    nan = np.where(lasing, 1.0, np.nan)
-    rs = 0.7 * dn + 0.3 * sd * rng.standard_normal(n_frames)
-    area = 1e5 * np.exp(-t / bleach_tau_s) * np.exp(sc["pump_sigma"] * rng.standard_normal(n_frames))
-    opl = dish_length_um + 20.0 * dn + 1e-3 * rng.standard_normal(n_frames)
-    table = pd.DataFrame({
-        "cell_id": [cell_id] * n_frames, "frame": np.arange(n_frames), "time_s": t,
-        "n_lines": np.where(lasing, 12, 0), "n_lasing": np.where(lasing, 10, 0),
-        "total_area_counts": area * nan, "lasing": lasing, "fsr_nm": 6.86 * nan,
-        "optical_length_um": opl * nan, "optical_length_err_um": 2e-3 * nan,
-        "relative_shift": rs * nan, "relative_shift_err": 0.7 * sd * nan,
-        "delta_optical_length_um": 20.0 * dn * nan, "delta_optical_length_err_um": 20.0 * sd * nan,
-        "index_change": dn * nan, "index_change_err": sd * nan,
-    })
-    truth = {"responder": bool(responder), "onset_s": onset if responder else np.nan,
-             "amplitude": amp if responder else 0.0, "tau_s": tau if responder else np.nan}
-    return table, truth
-
-
-def make_experiment(*, n_dishes, cells_per_dish, rng, responder_fraction=SCENARIO["responder_fraction"],
-                    n_frames=60):
-    """A cells table with cell_features of every cell: half the dishes control, half treated."""
-    gen = np.random.default_rng(rng)
-    rows = []
-    for d in range(n_dishes):
-        treated = d >= n_dishes // 2
-        dish_length = 27.66 + 0.3 * gen.standard_normal()    # dish-to-dish gap variation
-        dish_bleach = gen.uniform(*SCENARIO["bleach_tau_s"])  # dye batch of the dish
-        for j in range(cells_per_dish):
-            responder = bool(treated and gen.random() < responder_fraction)
-            cf, truth = make_cell_frames(f"{d:02d}-{j:02d}", rng=gen, responder=responder, n_frames=n_frames,
-                                         dish_length_um=dish_length, bleach_tau_s=dish_bleach)
-            feats = cell_features(cf, perturbation_s=200.0)
-            rows.append({"cell_id": f"{d:02d}-{j:02d}", "dish": f"D{d:02d}",
-                         "condition": "treated" if treated else "control", **truth, **feats})
-    return pd.DataFrame(rows)
-# ---------------------------------------------------------------------------------------------------
 
 
 @pytest.fixture(scope="module")
