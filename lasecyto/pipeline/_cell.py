@@ -41,17 +41,24 @@ class CellJob:
     parameters: dict
     lamp_axis: WavelengthAxis | None = None
     lamp_error: str | None = None
+    resonator: str = "fabry-perot"
 
 
 @dataclass
 class CellResult:
+    """Outcome of one item of a batch (plain values, picklable).
+
+    ``tables`` maps a table name of :data:`lasecyto.tables.SCHEMAS` to this
+    item's rows of that table; ``cell`` is the item's row of the ``cells``
+    table.  A failed item has ``status == "failed"``, its reason in ``error``
+    and no tables.
+    """
+
     cell_id: str
     status: str  # "ok" or "failed"
     error: str = ""
     seconds: float = 0.0
-    lines: pd.DataFrame | None = None
-    tracks: pd.DataFrame | None = None
-    cell_frames: pd.DataFrame | None = None
+    tables: dict = field(default_factory=dict)
     cell: dict = field(default_factory=dict)
 
 
@@ -127,7 +134,7 @@ def _axis_for(job, sidecar, stack):
                      found="none")
 
 
-def _run(job: CellJob) -> CellResult:
+def _run_fabry_perot(job: CellJob) -> CellResult:
     p = job.parameters
     lp = p["lines"]
     with read_stack(job.stack) as stack:
@@ -186,14 +193,19 @@ def _run(job: CellJob) -> CellResult:
                              n_consecutive=vp["n_consecutive"], settle_fraction=vp["settle_fraction"])
     cell = {"cell_id": job.cell_id, "dish": job.dish, "condition": job.condition,
             "perturbation_s": float(pert), **summary}
-    return CellResult(job.cell_id, "ok", lines=lines, tracks=tracks, cell_frames=frames_tab, cell=cell)
+    return CellResult(job.cell_id, "ok", cell=cell,
+                      tables={"lines": lines, "tracks": tracks, "cell_frames": frames_tab})
+
+
+#: per-item processing by resonator type (the manifest's ``experiment.resonator``)
+PROCESSORS = {"fabry-perot": _run_fabry_perot}
 
 
 def process_cell(job: CellJob) -> CellResult:
     """Process one cell; a failure is returned as a result, never raised."""
     t0 = time.perf_counter()
     try:
-        result = _run(job)
+        result = PROCESSORS[job.resonator](job)
     except LasecytoError as exc:
         result = CellResult(job.cell_id, "failed", error=str(exc))
     except Exception as exc:  # an unexpected failure must not stop the batch

@@ -195,7 +195,8 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         jobs.append(CellJob(cell_id=c.cell_id, dish=c.dish, condition=c.condition,
                             perturbation_s=float(c.perturbation_s), stack=str(c.stack),
                             sidecar=str(c.sidecar), rows=c.rows, gap_um=float(manifest.gap_um),
-                            parameters=params, lamp_axis=lamp_axis, lamp_error=lamp_error))
+                            parameters=params, lamp_axis=lamp_axis, lamp_error=lamp_error,
+                            resonator=manifest.resonator))
 
     bar = None
     if show_progress is None:
@@ -220,12 +221,10 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
                       "seconds": round(r.seconds, 3)})
     items.sort(key=lambda it: (-1 if it["item"] == "lamp" else order.get(it["item"], 10**9)))
 
-    out_tables = {
-        "lines": _concat([r.lines for r in results], "lines"),
-        "tracks": _concat([r.tracks for r in results], "tracks"),
-        "cell_frames": _concat([r.cell_frames for r in results], "cell_frames"),
-        "cells": _cells_table(results, manifest),
-    }
+    names = [n for n in tables.SCHEMAS if n != "cells" and any(n in r.tables for r in results)]
+    names = list(dict.fromkeys(["lines", "tracks", "cell_frames"] + names))
+    out_tables = {name: _concat([r.tables.get(name) for r in results], name) for name in names}
+    out_tables["cells"] = _cells_table(results, manifest)
     for name, table in out_tables.items():
         write_table(table, out_dir / "tables" / name, name=name)
 
