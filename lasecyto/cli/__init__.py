@@ -22,7 +22,7 @@ from ..exceptions import LasecytoError
 from ._common import EXIT_ERROR, EXIT_OK, EXIT_PARTIAL, EXIT_USAGE
 from ._run import _summary
 
-__all__ = ["main", "EXIT_OK", "EXIT_ERROR", "EXIT_USAGE", "EXIT_PARTIAL"]
+__all__ = ["main", "_summary", "EXIT_OK", "EXIT_ERROR", "EXIT_USAGE", "EXIT_PARTIAL"]
 
 #: command modules, in the order ``lasecyto --help`` lists them
 _COMMANDS = ("_run", "_report", "_lines")

@@ -1,6 +1,7 @@
 """Batch runs: per-cell processing, the experiment runner and its run record."""
 
-from ._cell import CellJob, CellResult, lines_table, process_cell
+from ._cell import CellJob, CellResult, process_cell
+from ._lines_stage import lines_table, stack_lines
 from ._lines_only import fit_stack
 from ._params import DEFAULT_PARAMETERS, load_recipe, resolve_parameters
 from ._run import RunResult, calibrate_lamp, run_experiment
@@ -17,4 +18,5 @@ __all__ = [
     "process_cell",
     "resolve_parameters",
     "run_experiment",
+    "stack_lines",
 ]

@@ -12,12 +12,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .. import tables
 from ..calibration import WavelengthAxis, reference_lines, solve_dispersion
 from ..exceptions import InputError
 from ..io import CameraModel, check_sidecar, default_sidecar_path, read_sidecar, read_stack
-from ..lines import fit_lines
-from ._cell import lines_table
+from ._lines_stage import stack_lines
 from ._params import resolve_parameters
 
 __all__ = ["fit_stack"]
@@ -77,7 +75,6 @@ def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference
         included with ``fit_ok=False`` and their reason).
     """
     p = resolve_parameters(parameters or {}, source="parameters")
-    lp = p["lines"]
     stack_path = Path(stack_path)
     if sidecar is None and default_sidecar_path(stack_path).is_file():
         sidecar = default_sidecar_path(stack_path)
@@ -97,26 +94,7 @@ def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference
             raise InputError("no wavelength axis for the stack", path=stack_path, field="wavelength",
                              expected="an axis in the sidecar or the stack, or --lamp with --reference",
                              found="none")
-        n_rows, n_frames = stack.n_rows, stack.n_frames
+        n_frames = stack.n_frames
         times = (np.full(n_frames, np.nan) if side is None
                  else np.asarray(side.frame_times_s, dtype=float))
-        offset = camera.offset_counts * n_rows
-        read_noise = camera.read_noise_e * math.sqrt(n_rows)
-        parts = []
-        block = int(lp["block_frames"])
-        for start in range(0, n_frames, block):
-            stop = min(start + block, n_frames)
-            raw = stack.read_rows(start, stop)
-            saturated = (raw >= camera.saturation_counts).any(axis=1)
-            spectra_e = (raw.sum(axis=1, dtype=float) - offset) / camera.gain_counts_per_e
-            fits = fit_lines(spectra_e, read_noise_e=read_noise, shape=lp["shape"], snr_min=lp["snr_min"],
-                             fwhm_guess_px=lp["fwhm_guess_px"], baseline=lp["baseline"],
-                             baseline_window_px=lp["baseline_window_px"])
-            parts.append(lines_table(fits, frame=np.arange(start, stop), time_s=times[start:stop],
-                                     cell_id=cell, axis=axis, gain_counts_per_e=camera.gain_counts_per_e,
-                                     saturated=saturated, lasing_max_fwhm_px=p["lasing"]["max_fwhm_px"],
-                                     lasing_snr_min=p["lasing"]["snr_min"]))
-            if progress is not None:
-                progress(stop, n_frames)
-    table = pd.concat(parts, ignore_index=True) if parts else tables.empty("lines")
-    return tables.validate(table, "lines")
+        return stack_lines(stack, camera, axis, times, cell_id=cell, parameters=p, progress=progress)
