@@ -369,6 +369,29 @@ def _common_drift(track, frame, y, n_iter=20):
     return y - c[f_inv]
 
 
+def _track_wavenumbers(tr):
+    """Per-track wavenumber (1/um) after removing the drift common to all tracks, and helpers.
+
+    Returns ``ids`` (sorted track ids), ``inv`` (row -> position in ``ids``),
+    ``sigma_t`` (drift-free median wavenumber, referred to the first frame),
+    ``sigma_err_t`` (its 1-sigma error: median row error / sqrt(rows)) and
+    ``power_t`` (summed positive ``area_counts``).
+    """
+    tid = tr["track_id"].to_numpy(np.int64)
+    lam = tr["center_nm"].to_numpy(float)
+    y = _common_drift(tid, tr["frame"].to_numpy(np.int64), np.log(1e3 / lam))
+    ids, inv = np.unique(tid, return_inverse=True)
+    sigma_t = np.exp(pd.Series(y).groupby(inv).median().to_numpy())
+    err = tr["center_err_nm"].to_numpy(float) * 1e3 / lam**2
+    err = np.where(np.isfinite(err) & (err > 0), err, np.nan)
+    g = pd.Series(err).groupby(inv)
+    sigma_err_t = (g.median() / np.sqrt(g.size())).to_numpy()
+    fill = np.nanmedian(sigma_err_t) if np.any(np.isfinite(sigma_err_t)) else 1e-6
+    sigma_err_t = np.where(np.isfinite(sigma_err_t), sigma_err_t, fill)
+    power_t = pd.Series(np.clip(tr["area_counts"].to_numpy(float), 0, None)).groupby(inv).sum().to_numpy()
+    return ids, inv, sigma_t, sigma_err_t, power_t
+
+
 def assign_mode_families(tracks):
     """Assign comb families and comb indices to one cell's tracks.
 
@@ -399,12 +422,7 @@ def assign_mode_families(tracks):
     if len(tr) == 0:
         tr["comb_index"] = np.zeros(0, dtype=np.int64)
         return tr
-    tid = tr["track_id"].to_numpy(np.int64)
-    lam = tr["center_nm"].to_numpy(float)
-    y = _common_drift(tid, tr["frame"].to_numpy(np.int64), np.log(1e3 / lam))
-    ids, inv = np.unique(tid, return_inverse=True)
-    sigma_t = np.exp(pd.Series(y).groupby(inv).median().to_numpy())
-    power_t = pd.Series(np.clip(tr["area_counts"].to_numpy(float), 0, None)).groupby(inv).sum().to_numpy()
+    ids, inv, sigma_t, _, power_t = _track_wavenumbers(tr)
     w = power_t if np.any(power_t > 0) else np.ones(ids.size)
     if np.unique(sigma_t).size < 2:
         family_t = np.zeros(ids.size, dtype=np.int64)

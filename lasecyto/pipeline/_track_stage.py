@@ -1,0 +1,104 @@
+"""The tracks stage of one cell: lines to mode tracks with families, mode numbers and hop flags.
+
+Shared by the Fabry-Perot processor and by ``lasecyto track``.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+
+from .. import tables
+from ..cavity import ModeIdentity, assign_mode_families, assign_mode_numbers, comb_spacing
+from ..exceptions import InputError, LasecytoWarning
+from ..tracks import link_lines
+
+__all__ = ["TrackedCell", "comb_spacing_of_lines", "track_cell"]
+
+
+@dataclass(frozen=True)
+class TrackedCell:
+    """Result of :func:`track_cell`: the ``tracks`` table, the mode identity, the comb spacing
+    used for hop flags (1/um, NaN when it could not be measured) and the warnings raised."""
+
+    tracks: object
+    identity: ModeIdentity
+    spacing_per_um: float
+    warnings: tuple
+
+
+def comb_spacing_of_lines(lines):
+    """Comb spacing (1/um) of the lasing lines of the frame with the most of them (NaN if < 2 lines).
+
+    Ties go to the earliest frame.
+    """
+    ok = lines["fit_ok"].to_numpy(bool) & lines["lasing"].to_numpy(bool)
+    lam = lines["center_nm"].to_numpy(float)
+    ok &= np.isfinite(lam) & (lam > 0)
+    if not ok.any():
+        return float("nan")
+    frames = lines["frame"].to_numpy(np.int64)[ok]
+    ids, counts = np.unique(frames, return_counts=True)
+    best = ids[np.argmax(counts)]
+    sel = frames == best
+    sigma = 1e3 / lam[ok][sel]
+    if np.unique(sigma).size < 2:
+        return float("nan")
+    area = np.clip(lines["area_counts"].to_numpy(float)[ok][sel], 0, None)
+    area = np.where(np.isfinite(area), area, 0.0)
+    return float(comb_spacing(sigma, weights=area if np.any(area > 0) else None))
+
+
+def track_cell(lines, parameters, *, medium=None, gap_um=None, index_offset=None):
+    """Link one cell's lines into tracks, sort them into families and assign mode numbers.
+
+    Parameters
+    ----------
+    lines : pandas.DataFrame
+        The cell's ``lines`` table.
+    parameters : dict
+        Resolved stage parameters (``tracks`` and ``cavity`` are used).
+    medium : Medium, optional
+        Dispersion of the gap content (absolute mode numbers; see
+        :func:`lasecyto.cavity.fit_mode_numbers`).
+    gap_um : float, optional
+        Mirror gap; with ``medium`` the gap's index offset is fitted.
+    index_offset : float, optional
+        Gap index minus medium index when the gap is not given (default 0).
+
+    Returns
+    -------
+    TrackedCell
+        Warnings of the mode identity (lasecyto warning categories) are caught
+        and returned as text, so that a batch can record them per cell.
+    """
+    tp, cp = parameters["tracks"], parameters["cavity"]
+    caught = []
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always", LasecytoWarning)
+        try:
+            spacing = comb_spacing_of_lines(lines)
+        except InputError:
+            spacing = float("nan")
+        tracks = link_lines(lines, max_step_nm=tp["max_step_nm"], max_gap_frames=tp["max_gap_frames"],
+                            min_length_frames=tp["min_length_frames"], intensity_scale=tp["intensity_scale"],
+                            width_scale=tp["width_scale"],
+                            hop_spacing_per_um=spacing if np.isfinite(spacing) else None,
+                            hop_tolerance=tp["hop_tolerance"])
+        identity = ModeIdentity(None, -1, note="no tracks")
+        if len(tracks):
+            tracks = assign_mode_families(tracks)
+            tracks, identity = assign_mode_numbers(tracks, medium=medium, gap_um=gap_um, index_offset=index_offset,
+                                                   offset_range=cp["index_offset_range"],
+                                                   ladder_tolerance=cp["ladder_tolerance"],
+                                                   max_transverse_order=cp["max_transverse_order"])
+    for w in record:
+        if issubclass(w.category, LasecytoWarning):
+            caught.append(str(w.message))
+        else:
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    if identity.note and len(tracks):
+        caught.append(identity.note)
+    return TrackedCell(tables.validate(tracks, "tracks"), identity, float(spacing), tuple(caught))
