@@ -343,8 +343,33 @@ def comb_spacing(wavenumber_per_um, *, weights=None, optical_length_range_um=(5.
         if s_c >= _DIVISOR_SHARPNESS * s_best:
             nl = c
             break
+    # a ladder with k zeta close to an integer lines all families up at k nL (or a fraction of it),
+    # leaving most orders of that comb empty or splitting it into many small families: among the
+    # strong divisors of the best peak, keep the comb needing the fewest families plus empty orders
+    best_cost = _comb_cost(sigma, 1.0 / (2.0 * nl))
+    for k in range(1, int(nl_best // lo) + 1):
+        c, p_c = _refine_power(sigma, w, nl_best / k, step, lo, hi)
+        if p_c < _DIVISOR_POWER * p_best or abs(c - nl) <= 1e-6 * nl:
+            continue
+        c, _ = _sharpen(sigma, w, c, span)
+        cost = _comb_cost(sigma, 1.0 / (2.0 * c))
+        if cost < best_cost:
+            nl, best_cost = c, cost
     s, *_ = _family_fit(sigma, w, 1.0 / (2.0 * nl), _PHASE_TOL)
     return float(s)
+
+
+def _comb_cost(sigma, spacing):
+    """Phase clusters (families) at ``spacing`` plus the orders they span without a line."""
+    phase = (sigma / spacing) % 1.0
+    labels = _cluster_circle(phase, _PHASE_TOL)
+    cost = 0
+    for j in np.unique(labels):
+        sel = labels == j
+        centre = _circular_mean(phase[sel], np.ones(int(sel.sum())))
+        orders = np.unique(np.rint(sigma[sel] / spacing - centre))
+        cost += 1 + int(orders.max() - orders.min()) + 1 - orders.size
+    return cost
 
 
 def _common_drift(track, frame, y, n_iter=20):
