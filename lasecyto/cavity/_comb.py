@@ -417,7 +417,7 @@ def _track_wavenumbers(tr):
     return ids, inv, sigma_t, sigma_err_t, power_t
 
 
-def assign_mode_families(tracks):
+def assign_mode_families(tracks, *, optical_length_range_um=(5.0, 200.0)):
     """Assign comb families and comb indices to one cell's tracks.
 
     Each track's wavenumber is its median after removing the drift common to
@@ -432,6 +432,10 @@ def assign_mode_families(tracks):
     ----------
     tracks : pandas.DataFrame
         A ``tracks`` table of a single cell.
+    optical_length_range_um : (float, float)
+        Range of the group optical length n_g L searched (see
+        :func:`comb_spacing`); with a known gap, narrowing it to gap x (1, 2)
+        rules out a comb k times longer when k zeta is an integer.
 
     Returns
     -------
@@ -453,7 +457,7 @@ def assign_mode_families(tracks):
         family_t = np.zeros(ids.size, dtype=np.int64)
         index_t = np.zeros(ids.size, dtype=np.int64)
     else:
-        s = comb_spacing(sigma_t, weights=w)
+        s = comb_spacing(sigma_t, weights=w, optical_length_range_um=optical_length_range_um)
         _, labels, _, centre = _family_fit(sigma_t, w, s, _PHASE_TOL)
         k = labels.max() + 1
         fam_power = np.array([power_t[labels == j].sum() for j in range(k)])

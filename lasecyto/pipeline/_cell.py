@@ -79,8 +79,22 @@ def _axis_for(job, sidecar, stack):
                      found="none")
 
 
+def _gap_medium(job):
+    """The gap medium named in the manifest (None when not given)."""
+    if not job.medium:
+        return None
+    from ..cavity.media import get_medium
+
+    try:
+        return get_medium(job.medium)
+    except InputError as exc:
+        raise InputError("unknown gap medium", field="experiment.medium", expected=exc.expected,
+                         found=repr(job.medium)) from None
+
+
 def _run_fabry_perot(job: CellJob) -> CellResult:
     p = job.parameters
+    medium = _gap_medium(job)
     with read_stack(job.stack) as stack:
         sidecar = read_sidecar(job.sidecar)
         check_sidecar(sidecar, stack)
@@ -96,14 +110,6 @@ def _run_fabry_perot(job: CellJob) -> CellResult:
         times = sidecar.frame_times_s
         lines = stack_lines(stack, cam, axis, times, rows=(r0, r1), cell_id=job.cell_id, parameters=p)
         n_frames = stack.n_frames
-    medium = None
-    if job.medium:
-        from ..cavity.media import get_medium
-        try:
-            medium = get_medium(job.medium)
-        except InputError as exc:
-            raise InputError("unknown gap medium", field="experiment.medium", expected=exc.expected,
-                             found=repr(job.medium)) from None
     gap = job.gap_um if np.isfinite(job.gap_um) else None
     tracked = track_cell(lines, p, medium=medium, gap_um=gap)
     for text in tracked.warnings:

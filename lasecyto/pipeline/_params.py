@@ -44,6 +44,8 @@ DEFAULT_PARAMETERS: dict[str, dict] = {
         "index_offset_range": 0.3,   # gap index - medium index searched for mode numbers
         "ladder_tolerance": 0.02,    # cycles: family offsets must sit this close to k x Gouy fraction
         "max_transverse_order": 6,
+        "group_index_min": 1.0,      # with gap_um, the comb is searched for n_g L in
+        "group_index_max": 2.0,      # gap_um x [group_index_min, group_index_max]
     },
     "verdict": {
         "z_min": 5.0,

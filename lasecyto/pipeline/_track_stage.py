@@ -29,10 +29,14 @@ class TrackedCell:
     warnings: tuple
 
 
-def comb_spacing_of_lines(lines):
-    """Comb spacing (1/um) of the lasing lines of the frame with the most of them (NaN if < 2 lines).
+def comb_spacing_of_lines(lines, *, n_frames=7, optical_length_range_um=(5.0, 200.0)):
+    """Comb spacing (1/um) of a cell's lasing lines: the median over a few well-filled frames.
 
-    Ties go to the earliest frame.
+    The frames with at least 80 % of the largest number of lasing lines are
+    taken at evenly spaced ranks in time (at most ``n_frames``); each gives
+    :func:`lasecyto.cavity.comb_spacing` of its lines weighted by their area.
+    NaN when no frame has 2 distinct lines.  ``optical_length_range_um`` is
+    the range of n_g L searched.
     """
     ok = lines["fit_ok"].to_numpy(bool) & lines["lasing"].to_numpy(bool)
     lam = lines["center_nm"].to_numpy(float)
@@ -40,15 +44,22 @@ def comb_spacing_of_lines(lines):
     if not ok.any():
         return float("nan")
     frames = lines["frame"].to_numpy(np.int64)[ok]
+    sigma_all = 1e3 / lam[ok]
+    area_all = np.clip(np.nan_to_num(lines["area_counts"].to_numpy(float)[ok]), 0, None)
     ids, counts = np.unique(frames, return_counts=True)
-    best = ids[np.argmax(counts)]
-    sel = frames == best
-    sigma = 1e3 / lam[ok][sel]
-    if np.unique(sigma).size < 2:
+    full = ids[counts >= max(2, 0.8 * counts.max())]
+    if full.size == 0:
         return float("nan")
-    area = np.clip(lines["area_counts"].to_numpy(float)[ok][sel], 0, None)
-    area = np.where(np.isfinite(area), area, 0.0)
-    return float(comb_spacing(sigma, weights=area if np.any(area > 0) else None))
+    pick = full[np.unique(np.linspace(0, full.size - 1, min(n_frames, full.size)).round().astype(int))]
+    spacings = []
+    for f in pick:
+        sel = frames == f
+        sigma, area = sigma_all[sel], area_all[sel]
+        if np.unique(sigma).size < 2:
+            continue
+        spacings.append(comb_spacing(sigma, weights=area if np.any(area > 0) else None,
+                                     optical_length_range_um=optical_length_range_um))
+    return float(np.median(spacings)) if spacings else float("nan")
 
 
 def track_cell(lines, parameters, *, medium=None, gap_um=None, index_offset=None):
@@ -64,7 +75,9 @@ def track_cell(lines, parameters, *, medium=None, gap_um=None, index_offset=None
         Dispersion of the gap content (absolute mode numbers; see
         :func:`lasecyto.cavity.fit_mode_numbers`).
     gap_um : float, optional
-        Mirror gap; with ``medium`` the gap's index offset is fitted.
+        Mirror gap; with ``medium`` the gap's index offset is fitted.  The
+        comb is then searched where n_g L lies within gap x
+        (``cavity.group_index_min``, ``cavity.group_index_max``).
     index_offset : float, optional
         Gap index minus medium index when the gap is not given (default 0).
 
@@ -75,11 +88,18 @@ def track_cell(lines, parameters, *, medium=None, gap_um=None, index_offset=None
         and returned as text, so that a batch can record them per cell.
     """
     tp, cp = parameters["tracks"], parameters["cavity"]
+    if gap_um is not None:
+        if not (np.isfinite(gap_um) and gap_um > 0):
+            raise InputError("gap must be a positive length", field="gap_um", expected="> 0 um or None",
+                             found=repr(gap_um))
+        search = (cp["group_index_min"] * gap_um, cp["group_index_max"] * gap_um)
+    else:
+        search = (5.0, 200.0)
     caught = []
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always", LasecytoWarning)
         try:
-            spacing = comb_spacing_of_lines(lines)
+            spacing = comb_spacing_of_lines(lines, optical_length_range_um=search)
         except InputError:
             spacing = float("nan")
         tracks = link_lines(lines, max_step_nm=tp["max_step_nm"], max_gap_frames=tp["max_gap_frames"],
@@ -89,7 +109,7 @@ def track_cell(lines, parameters, *, medium=None, gap_um=None, index_offset=None
                             hop_tolerance=tp["hop_tolerance"])
         identity = ModeIdentity(None, -1, note="no tracks")
         if len(tracks):
-            tracks = assign_mode_families(tracks)
+            tracks = assign_mode_families(tracks, optical_length_range_um=search)
             tracks, identity = assign_mode_numbers(tracks, medium=medium, gap_um=gap_um, index_offset=index_offset,
                                                    offset_range=cp["index_offset_range"],
                                                    ladder_tolerance=cp["ladder_tolerance"],
