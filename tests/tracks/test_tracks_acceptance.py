@@ -143,3 +143,15 @@ def test_link_lines_bad_hop_spacing():
     lines = mode_trajectories(n_frames=80, rng=1)
     with pytest.raises(InputError, match="hop_spacing_per_um"):
         link_lines(lines, hop_spacing_per_um=-1.0)
+
+
+def test_linking_does_not_depend_on_row_order():
+    # deterministic tie-breaking: the same detections in another order give the same tracks
+    lines = mode_trajectories(n_frames=100, rng=8)
+    f, p = lines["frame"].to_numpy(), lines["center_nm"].to_numpy()
+    a, w = lines["area_counts"].to_numpy(), lines["fwhm_nm"].to_numpy()
+    ref = link_detections(f, p, max_step=0.15, intensity=a, width=w)
+    perm = np.random.default_rng(0).permutation(f.size)
+    again = link_detections(f[perm], p[perm], max_step=0.15, intensity=a[perm], width=w[perm])
+    assert np.array_equal(again.track_id, ref.track_id[perm])
+    assert again.n_gap_links == ref.n_gap_links
