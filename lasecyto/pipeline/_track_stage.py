@@ -85,7 +85,10 @@ def track_cell(lines, parameters, *, medium=None, gap_um=None, index_offset=None
     -------
     TrackedCell
         Warnings of the mode identity (lasecyto warning categories) are caught
-        and returned as text, so that a batch can record them per cell.
+        and returned as text, so that a batch can record them per cell; a
+        mode identity that cannot be established (e.g. lines outside the
+        medium's validity range) leaves ``mode_number`` and
+        ``transverse_order`` at -1 and says why in the warnings.
     """
     tp, cp = parameters["tracks"], parameters["cavity"]
     if gap_um is not None:
@@ -110,10 +113,13 @@ def track_cell(lines, parameters, *, medium=None, gap_um=None, index_offset=None
         identity = ModeIdentity(None, -1, note="no tracks")
         if len(tracks):
             tracks = assign_mode_families(tracks, optical_length_range_um=search)
-            tracks, identity = assign_mode_numbers(tracks, medium=medium, gap_um=gap_um, index_offset=index_offset,
-                                                   offset_range=cp["index_offset_range"],
-                                                   ladder_tolerance=cp["ladder_tolerance"],
-                                                   max_transverse_order=cp["max_transverse_order"])
+            try:
+                tracks, identity = assign_mode_numbers(
+                    tracks, medium=medium, gap_um=gap_um, index_offset=index_offset,
+                    offset_range=cp["index_offset_range"], ladder_tolerance=cp["ladder_tolerance"],
+                    max_transverse_order=cp["max_transverse_order"])
+            except InputError as exc:   # e.g. lines outside the medium's validity range: keep the tracks
+                identity = ModeIdentity(None, -1, note=f"no mode identity: {exc}")
     for w in record:
         if issubclass(w.category, LasecytoWarning):
             caught.append(str(w.message))

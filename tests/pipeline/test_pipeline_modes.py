@@ -47,3 +47,16 @@ def test_cell_thickness_and_mode_columns(small_experiment, tmp_path):
     assert tr["hop"].dtype == bool
     assert np.isfinite(cf["gouy_fraction"]).mean() > 0.9
     assert np.isfinite(cf["phase_optical_length_um"]).mean() > 0.9
+
+
+def test_track_stage_keeps_tracks_when_the_medium_does_not_cover_the_lines():
+    # lines at 590-640 nm, a user medium valid only below 550 nm: tracks survive, the note says why
+    from lasecyto.cavity.media import Cauchy
+    from lasecyto.pipeline import DEFAULT_PARAMETERS
+    from lasecyto.pipeline._track_stage import track_cell
+    from lasecyto.synth import mode_trajectories
+
+    lines = mode_trajectories(n_frames=80, n_hops=0, rng=2)
+    res = track_cell(lines, DEFAULT_PARAMETERS, medium=Cauchy(A=1.33, valid_nm=(400.0, 550.0)), gap_um=20.0)
+    assert len(res.tracks) > 0 and (res.tracks["mode_number"] == -1).all()
+    assert any("no mode identity" in w and "validity range" in w for w in res.warnings)
