@@ -3,7 +3,10 @@
 Each table is long and tidy (one row per observation, a plain RangeIndex) and
 carries its units in its column names (``_nm``, ``_px``, ``_s``, ``_um``,
 ``_counts``).  Wavelengths are vacuum wavelengths.  A table may carry extra
-columns; the columns listed here must be present with the stated kind.
+columns; the columns listed here must be present with the stated kind, except
+those marked optional (``required=False``: quantities a stage adds when it can
+compute them, e.g. Fabry-Perot ladder quantities), which are kind-checked and
+put in schema order when present.
 
 :func:`validate` is called by every writer and reader in :mod:`lasecyto.io`
 and may be called by any stage on its inputs.
@@ -27,10 +30,11 @@ class Column:
     kind: str  # "int", "float", "bool", "str"
     unit: str  # "" for dimensionless
     description: str
+    required: bool = True
 
 
-def _c(name, kind, unit, description):
-    return Column(name, kind, unit, description)
+def _c(name, kind, unit, description, required=True):
+    return Column(name, kind, unit, description, required)
 
 
 _LINES = (
@@ -59,6 +63,12 @@ _LINES = (
 _TRACKS = _LINES + (
     _c("track_id", "int", "", "mode track within the cell, from 0"),
     _c("mode_family", "int", "", "comb family of the track: 0 is the family carrying most power"),
+    _c("mode_number", "int", "", "longitudinal mode number q (-1 when not assigned; rule in DEVELOPERS.md)",
+       False),
+    _c("transverse_order", "int", "", "transverse order k of the track's family, 0 = fundamental (-1 unknown)",
+       False),
+    _c("hop", "bool", "", "first row of a track that began by a mode hop of about one FSR from another track",
+       False),
 )
 
 _CELL_FRAMES = (
@@ -76,8 +86,18 @@ _CELL_FRAMES = (
     _c("relative_shift_err", "float", "", "1-sigma uncertainty"),
     _c("delta_optical_length_um", "float", "um", "change of the phase optical length n L since baseline"),
     _c("delta_optical_length_err_um", "float", "um", "1-sigma uncertainty"),
-    _c("index_change", "float", "", "change of the gap's refractive index since baseline (needs gap_um)"),
+    _c("index_change", "float", "",
+       "change of the cell's refractive index since baseline (needs gap_um or cell_thickness_um)"),
     _c("index_change_err", "float", "", "1-sigma uncertainty"),
+    _c("reference_nm", "float", "nm", "wavelength at which phase_optical_length_um is given (per cell)", False),
+    _c("phase_optical_length_um", "float", "um",
+       "phase optical length n L at reference_nm from absolute mode numbers (needs a gap medium)", False),
+    _c("phase_optical_length_err_um", "float", "um", "1-sigma uncertainty", False),
+    _c("gouy_fraction", "float", "", "transverse-ladder spacing / free spectral range (Gouy phase / pi)", False),
+    _c("gouy_fraction_err", "float", "", "1-sigma uncertainty", False),
+    _c("lens_focal_length_um", "float", "um",
+       "focal length of the cell lens on a flat mirror, L / sin^2(pi gouy_fraction) (needs gap_um)", False),
+    _c("lens_focal_length_err_um", "float", "um", "1-sigma uncertainty", False),
 )
 
 _CELLS = (
@@ -139,7 +159,7 @@ def validate(table: pd.DataFrame, name: str, *, path=None) -> pd.DataFrame:
     if not isinstance(table, pd.DataFrame):
         raise SchemaError("not a table", path=where, expected="a pandas DataFrame",
                           found=type(table).__name__)
-    cols = _schema(name)
+    cols = tuple(c for c in _schema(name) if c.required or c.name in table.columns)
     missing = [c.name for c in cols if c.name not in table.columns]
     if missing:
         raise SchemaError("missing columns", path=where, field=", ".join(missing),
@@ -168,5 +188,6 @@ def empty(name: str) -> pd.DataFrame:
 def describe(name: str) -> str:
     """The schema as a Markdown table (used in the docs)."""
     rows = ["| column | kind | unit | meaning |", "|---|---|---|---|"]
-    rows += [f"| `{c.name}` | {c.kind} | {c.unit or '-'} | {c.description} |" for c in _schema(name)]
+    rows += [f"| `{c.name}` | {c.kind}{'' if c.required else ' (optional)'} | {c.unit or '-'} | {c.description} |"
+             for c in _schema(name)]
     return "\n".join(rows)

@@ -343,8 +343,33 @@ def comb_spacing(wavenumber_per_um, *, weights=None, optical_length_range_um=(5.
         if s_c >= _DIVISOR_SHARPNESS * s_best:
             nl = c
             break
+    # a ladder with k zeta close to an integer lines all families up at k nL (or a fraction of it),
+    # leaving most orders of that comb empty or splitting it into many small families: among the
+    # strong divisors of the best peak, keep the comb needing the fewest families plus empty orders
+    best_cost = _comb_cost(sigma, 1.0 / (2.0 * nl))
+    for k in range(1, int(nl_best // lo) + 1):
+        c, p_c = _refine_power(sigma, w, nl_best / k, step, lo, hi)
+        if p_c < _DIVISOR_POWER * p_best or abs(c - nl) <= 1e-6 * nl:
+            continue
+        c, _ = _sharpen(sigma, w, c, span)
+        cost = _comb_cost(sigma, 1.0 / (2.0 * c))
+        if cost < best_cost:
+            nl, best_cost = c, cost
     s, *_ = _family_fit(sigma, w, 1.0 / (2.0 * nl), _PHASE_TOL)
     return float(s)
+
+
+def _comb_cost(sigma, spacing):
+    """Phase clusters (families) at ``spacing`` plus the orders they span without a line."""
+    phase = (sigma / spacing) % 1.0
+    labels = _cluster_circle(phase, _PHASE_TOL)
+    cost = 0
+    for j in np.unique(labels):
+        sel = labels == j
+        centre = _circular_mean(phase[sel], np.ones(int(sel.sum())))
+        orders = np.unique(np.rint(sigma[sel] / spacing - centre))
+        cost += 1 + int(orders.max() - orders.min()) + 1 - orders.size
+    return cost
 
 
 def _common_drift(track, frame, y, n_iter=20):
@@ -369,7 +394,30 @@ def _common_drift(track, frame, y, n_iter=20):
     return y - c[f_inv]
 
 
-def assign_mode_families(tracks):
+def _track_wavenumbers(tr):
+    """Per-track wavenumber (1/um) after removing the drift common to all tracks, and helpers.
+
+    Returns ``ids`` (sorted track ids), ``inv`` (row -> position in ``ids``),
+    ``sigma_t`` (drift-free median wavenumber, referred to the first frame),
+    ``sigma_err_t`` (its 1-sigma error: median row error / sqrt(rows)) and
+    ``power_t`` (summed positive ``area_counts``).
+    """
+    tid = tr["track_id"].to_numpy(np.int64)
+    lam = tr["center_nm"].to_numpy(float)
+    y = _common_drift(tid, tr["frame"].to_numpy(np.int64), np.log(1e3 / lam))
+    ids, inv = np.unique(tid, return_inverse=True)
+    sigma_t = np.exp(pd.Series(y).groupby(inv).median().to_numpy())
+    err = tr["center_err_nm"].to_numpy(float) * 1e3 / lam**2
+    err = np.where(np.isfinite(err) & (err > 0), err, np.nan)
+    g = pd.Series(err).groupby(inv)
+    sigma_err_t = (g.median() / np.sqrt(g.size())).to_numpy()
+    fill = np.nanmedian(sigma_err_t) if np.any(np.isfinite(sigma_err_t)) else 1e-6
+    sigma_err_t = np.where(np.isfinite(sigma_err_t), sigma_err_t, fill)
+    power_t = pd.Series(np.clip(tr["area_counts"].to_numpy(float), 0, None)).groupby(inv).sum().to_numpy()
+    return ids, inv, sigma_t, sigma_err_t, power_t
+
+
+def assign_mode_families(tracks, *, optical_length_range_um=(5.0, 200.0)):
     """Assign comb families and comb indices to one cell's tracks.
 
     Each track's wavenumber is its median after removing the drift common to
@@ -384,6 +432,10 @@ def assign_mode_families(tracks):
     ----------
     tracks : pandas.DataFrame
         A ``tracks`` table of a single cell.
+    optical_length_range_um : (float, float)
+        Range of the group optical length n_g L searched (see
+        :func:`comb_spacing`); with a known gap, narrowing it to gap x (1, 2)
+        rules out a comb k times longer when k zeta is an integer.
 
     Returns
     -------
@@ -399,18 +451,13 @@ def assign_mode_families(tracks):
     if len(tr) == 0:
         tr["comb_index"] = np.zeros(0, dtype=np.int64)
         return tr
-    tid = tr["track_id"].to_numpy(np.int64)
-    lam = tr["center_nm"].to_numpy(float)
-    y = _common_drift(tid, tr["frame"].to_numpy(np.int64), np.log(1e3 / lam))
-    ids, inv = np.unique(tid, return_inverse=True)
-    sigma_t = np.exp(pd.Series(y).groupby(inv).median().to_numpy())
-    power_t = pd.Series(np.clip(tr["area_counts"].to_numpy(float), 0, None)).groupby(inv).sum().to_numpy()
+    ids, inv, sigma_t, _, power_t = _track_wavenumbers(tr)
     w = power_t if np.any(power_t > 0) else np.ones(ids.size)
     if np.unique(sigma_t).size < 2:
         family_t = np.zeros(ids.size, dtype=np.int64)
         index_t = np.zeros(ids.size, dtype=np.int64)
     else:
-        s = comb_spacing(sigma_t, weights=w)
+        s = comb_spacing(sigma_t, weights=w, optical_length_range_um=optical_length_range_um)
         _, labels, _, centre = _family_fit(sigma_t, w, s, _PHASE_TOL)
         k = labels.max() + 1
         fam_power = np.array([power_t[labels == j].sum() for j in range(k)])

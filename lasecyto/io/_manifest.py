@@ -46,6 +46,7 @@ class CellSpec:
     stack: Path
     sidecar: Path
     rows: tuple[int, int] | None = None
+    cell_thickness_um: float = math.nan
 
 
 @dataclass(frozen=True)
@@ -63,6 +64,8 @@ class Manifest:
     dishes: dict = field(default_factory=dict)
     cells: tuple = ()
     parameters: dict = field(default_factory=dict)
+    medium: str = ""
+    cell_thickness_um: float = math.nan
 
 
 def _join(root, relative):
@@ -175,6 +178,16 @@ def read_manifest(path) -> Manifest:
         p.add("experiment.resonator", "unsupported resonator", " or ".join(repr(r) for r in RESONATORS),
               "absent" if resonator is None else _show(resonator))
     gap_um = p.number(exp, "gap_um", "experiment", positive=True)
+    # gap medium (a name of lasecyto.cavity.media, checked when the cells are processed) and the
+    # thickness of the cell in the gap (partly filled gap), for the whole experiment or per cell
+    medium = p.text(exp, "medium", "experiment", required=False) or ""
+    thickness = p.number(exp, "cell_thickness_um", "experiment", positive=True)
+
+    def _thickness_fits(value, where):
+        if math.isfinite(value) and math.isfinite(gap_um) and value > gap_um:
+            p.add(where, "cell thicker than the mirror gap", f"<= experiment.gap_um ({gap_um:g})", _show(value))
+
+    _thickness_fits(thickness, "experiment.cell_thickness_um")
     synthetic = exp.get("synthetic", False)
     if not isinstance(synthetic, bool):
         p.add("experiment.synthetic", "not a boolean", "true or false", _show(synthetic))
@@ -229,6 +242,8 @@ def read_manifest(path) -> Manifest:
         sidecar = p.text(c, "sidecar", where, required=False)
         bad_sidecar = "sidecar" in c and sidecar is None
         rows = _rows(c["rows"], p, f"{where}.rows") if "rows" in c else None
+        cell_t = p.number(c, "cell_thickness_um", where, positive=True) if "cell_thickness_um" in c else thickness
+        _thickness_fits(cell_t, f"{where}.cell_thickness_um")
         if cell_id is not None:
             if cell_id in seen:
                 p.add(f"{where}.cell_id", "repeated cell_id", "unique cell ids", _show(cell_id))
@@ -248,13 +263,13 @@ def read_manifest(path) -> Manifest:
         cells.append(CellSpec(cell_id=cell_id, dish=dish, condition=spec.condition,
                               perturbation_s=spec.perturbation_s, stack=stack_path,
                               sidecar=_join(root, sidecar) if sidecar else default_sidecar_path(stack_path),
-                              rows=rows))
+                              rows=rows, cell_thickness_um=cell_t))
     if p.items:
         n = len(p.items)
         raise InputError(f"{n} problem{'s' if n > 1 else ''} in the manifest: " + "; ".join(p.items), path=path)
     return Manifest(path=path, root=root, name=name, resonator=resonator, gap_um=gap_um, synthetic=synthetic,
                     description=description, lamp=lamp, dishes=dishes, cells=tuple(cells),
-                    parameters=parameters)
+                    parameters=parameters, medium=medium, cell_thickness_um=thickness)
 
 
 def missing_files(manifest: Manifest) -> list[tuple[str, Path]]:

@@ -6,6 +6,8 @@ process pools and clusters can run it: the worker opens its own files.
 
 from __future__ import annotations
 
+import logging
+import math
 import time
 import traceback
 from dataclasses import dataclass, field
@@ -14,14 +16,16 @@ import numpy as np
 
 from .. import tables
 from ..calibration import WavelengthAxis
-from ..cavity import assign_mode_families, cell_frames
+from ..cavity import cell_frames
 from ..exceptions import InputError, LasecytoError
 from ..features import summarize_cell
 from ..io import check_sidecar, read_sidecar, read_stack
-from ..tracks import link_lines
 from ._lines_stage import stack_lines
+from ._track_stage import track_cell
 
 __all__ = ["CellJob", "CellResult", "process_cell"]
+
+logger = logging.getLogger("lasecyto.pipeline")
 
 
 @dataclass(frozen=True)
@@ -40,6 +44,8 @@ class CellJob:
     lamp_axis: WavelengthAxis | None = None
     lamp_error: str | None = None
     resonator: str = "fabry-perot"
+    medium: str = ""                      # gap medium (lasecyto.cavity.media name), "" when not given
+    cell_thickness_um: float = math.nan   # thickness of the cell in the gap, NaN: fills the gap
 
 
 @dataclass
@@ -73,8 +79,22 @@ def _axis_for(job, sidecar, stack):
                      found="none")
 
 
+def _gap_medium(job):
+    """The gap medium named in the manifest (None when not given)."""
+    if not job.medium:
+        return None
+    from ..cavity.media import get_medium
+
+    try:
+        return get_medium(job.medium)
+    except InputError as exc:
+        raise InputError("unknown gap medium", field="experiment.medium", expected=exc.expected,
+                         found=repr(job.medium)) from None
+
+
 def _run_fabry_perot(job: CellJob) -> CellResult:
     p = job.parameters
+    medium = _gap_medium(job)
     with read_stack(job.stack) as stack:
         sidecar = read_sidecar(job.sidecar)
         check_sidecar(sidecar, stack)
@@ -90,18 +110,18 @@ def _run_fabry_perot(job: CellJob) -> CellResult:
         times = sidecar.frame_times_s
         lines = stack_lines(stack, cam, axis, times, rows=(r0, r1), cell_id=job.cell_id, parameters=p)
         n_frames = stack.n_frames
-    tp = p["tracks"]
-    tracks = link_lines(lines, max_step_nm=tp["max_step_nm"], max_gap_frames=tp["max_gap_frames"],
-                        min_length_frames=tp["min_length_frames"])
-    if len(tracks):
-        tracks = assign_mode_families(tracks)
-    tracks = tables.validate(tracks, "tracks")
+    gap = job.gap_um if np.isfinite(job.gap_um) else None
+    tracked = track_cell(lines, p, medium=medium, gap_um=gap)
+    for text in tracked.warnings:
+        logger.warning("cell %s: %s", job.cell_id, text)
+    tracks = tracked.tracks
     pert = job.perturbation_s
     baseline_end = pert if np.isfinite(pert) else float(times[-1]) + 1.0
     frames_tab = cell_frames(lines, tracks, frame=np.arange(n_frames), time_s=times,
-                             baseline_end_s=baseline_end,
-                             gap_um=job.gap_um if np.isfinite(job.gap_um) else None,
-                             cell_id=job.cell_id)
+                             baseline_end_s=baseline_end, gap_um=gap, cell_id=job.cell_id,
+                             cell_thickness_um=(job.cell_thickness_um if np.isfinite(job.cell_thickness_um)
+                                                else None),
+                             identity=tracked.identity)
     frames_tab = tables.validate(frames_tab, "cell_frames")
     vp = p["verdict"]
     summary = summarize_cell(frames_tab, perturbation_s=pert,
@@ -111,6 +131,9 @@ def _run_fabry_perot(job: CellJob) -> CellResult:
                              n_consecutive=vp["n_consecutive"], settle_fraction=vp["settle_fraction"])
     cell = {"cell_id": job.cell_id, "dish": job.dish, "condition": job.condition,
             "perturbation_s": float(pert), **summary}
+    if tracked.warnings:  # mode-identity caveats travel with the cell's row
+        modes_note = "modes: " + "; ".join(tracked.warnings)
+        cell["note"] = f"{cell['note']}; {modes_note}" if cell.get("note") else modes_note
     return CellResult(job.cell_id, "ok", cell=cell,
                       tables={"lines": lines, "tracks": tracks, "cell_frames": frames_tab})
 

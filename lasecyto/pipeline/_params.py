@@ -36,6 +36,16 @@ DEFAULT_PARAMETERS: dict[str, dict] = {
         "max_step_nm": 0.15,      # gate per frame after motion prediction
         "max_gap_frames": 3,
         "min_length_frames": 3,
+        "intensity_scale": 0.5,   # log intensity ratio costing as much as a third of the gate
+        "width_scale": 0.3,       # log width ratio costing as much as a third of the gate
+        "hop_tolerance": 0.05,    # a hop lands within this fraction of one comb spacing
+    },
+    "cavity": {
+        "index_offset_range": 0.3,   # gap index - medium index searched for mode numbers
+        "ladder_tolerance": 0.02,    # cycles: family offsets must sit this close to k x Gouy fraction
+        "max_transverse_order": 6,
+        "group_index_min": 1.0,      # with gap_um, the comb is searched for n_g L in
+        "group_index_max": 2.0,      # gap_um x [group_index_min, group_index_max]
     },
     "verdict": {
         "z_min": 5.0,

@@ -196,7 +196,8 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
                             perturbation_s=float(c.perturbation_s), stack=str(c.stack),
                             sidecar=str(c.sidecar), rows=c.rows, gap_um=float(manifest.gap_um),
                             parameters=params, lamp_axis=lamp_axis, lamp_error=lamp_error,
-                            resonator=manifest.resonator))
+                            resonator=manifest.resonator, medium=manifest.medium,
+                            cell_thickness_um=float(c.cell_thickness_um)))
 
     bar = None
     if show_progress is None:

@@ -10,6 +10,7 @@ render_lamp_frame     one neon (or any line-lamp) frame through a known waveleng
 neon_lines_air_nm     Ne I air wavelengths 530-725 nm (NIST ASD)
 neon_relative_intensities  their NIST relative intensities
 fp_mode_wavelengths   exact resonances of a dispersive Fabry-Perot gap
+mode_trajectories     a drifting mode comb with crossings, dropouts, hops and true identities
 water_index_daimon    refractive index of water at 20 degC
 """
 
@@ -18,6 +19,7 @@ from ._media import water_index_daimon
 from ._modes import fp_mode_wavelengths
 from ._neon import neon_lines_air_nm, neon_relative_intensities
 from ._render import render_lamp_frame
+from ._trajectories import TRAJECTORY_SCENARIO, mode_trajectories
 
 __all__ = [
     "write_fp_experiment",
@@ -26,4 +28,6 @@ __all__ = [
     "neon_relative_intensities",
     "fp_mode_wavelengths",
     "water_index_daimon",
+    "mode_trajectories",
+    "TRAJECTORY_SCENARIO",
 ]

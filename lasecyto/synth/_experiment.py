@@ -95,6 +95,7 @@ def _manifest_text(sim, *, frame_interval_s, perturbation_s, stack_of_cell, rows
             ("name", "synthetic-hypertonic-shift"),
             ("resonator", "fabry-perot"),
             ("gap_um", float(gap)),
+            ("medium", "water-daimon"),     # the cytoplasm is water (Daimon & Masumura) plus a constant
             ("synthetic", True),
             ("description", desc),
         ]),

@@ -154,3 +154,84 @@ def test_end_to_end_coverage_of_index_change():
         base_len = np.nanmedian(out["optical_length_um"][t < 300])
         assert base_len == pytest.approx((1.35968 + 3 * 0.003029 / 0.615**2) * 20.0, rel=5e-3)
     assert 0.92 <= inside / total <= 0.99
+
+
+def _partial_fill_tracks(dn_cell, *, n_frames=20, shift_from=10):
+    # check-values.md section 4, partial fill: t = 8 um of cell (n_c = 1.37) in a 15 um gap of medium
+    # n_m = 1.335 (non-dispersive): n L_eff = 1.335 x 7 + 1.37 x 8 = 20.305 um
+    nl0 = 1.335 * 7.0 + 1.37 * 8.0
+    f, lam, tid = [], [], []
+    q_all = np.arange(int(2e3 * nl0 / 532) + 1, int(2e3 * nl0 / 498) + 1)
+    for t, q in enumerate(q_all):
+        for fr in range(n_frames):
+            nl = nl0 + (8.0 * dn_cell if fr >= shift_from else 0.0)
+            f.append(fr)
+            lam.append(2e3 * nl / q)
+            tid.append(t)
+    f = np.array(f)
+    return _rows_to_tables(f, np.array(lam), np.full(f.size, 0.001), np.full(f.size, 1e4), track_id=tid)
+
+
+def test_partly_filled_gap_section_4_numbers():
+    # check-values.md section 4 (computed there): n L_eff = 20.305 um; d lambda = 0.2029 nm at 515 nm per
+    # delta n_c = 1e-3 (d lambda / d n_c = lambda t / (n L_eff)); the cell's index change must come back
+    # as 1e-3 (within 0.5 %: the shift varies as lambda across the comb)
+    nl_eff = 1.335 * 7.0 + 1.37 * 8.0
+    assert nl_eff == pytest.approx(20.305, abs=1e-9)
+    assert 515.0 * 8.0 * 1e-3 / nl_eff == pytest.approx(0.2029, abs=5e-5)
+    tr = assign_mode_families(_partial_fill_tracks(1e-3))
+    frames = np.arange(20)
+    out = cell_frames(tr[_LINES_COLS], tr, frame=frames, time_s=10.0 * frames, baseline_end_s=95.0,
+                      gap_um=15.0, cell_thickness_um=8.0, cell_id="c0")
+    after = out["frame"] >= 10
+    assert np.allclose(out.loc[~after, "optical_length_um"], 20.305, rtol=1e-9)
+    assert np.allclose(out.loc[after, "index_change"], 1e-3, rtol=5e-3)
+    assert np.allclose(out.loc[after, "delta_optical_length_um"], 8e-3, rtol=5e-3)
+    # the same data read as a filled gap would give t / L = 8 / 15 of it
+    full = cell_frames(tr[_LINES_COLS], tr, frame=frames, time_s=10.0 * frames, baseline_end_s=95.0,
+                       gap_um=15.0, cell_id="c0")
+    assert np.allclose(full.loc[after, "index_change"], 1e-3 * 8 / 15, rtol=5e-3)
+    # thickness without a gap works (Delta(n L) / t needs no L); a cell thicker than the gap does not
+    only_t = cell_frames(tr[_LINES_COLS], tr, frame=frames, time_s=10.0 * frames, baseline_end_s=95.0,
+                         cell_thickness_um=8.0, cell_id="c0")
+    assert np.allclose(only_t["index_change"], out["index_change"], equal_nan=True)
+    assert only_t["lens_focal_length_um"].isna().all()
+    with pytest.raises(InputError, match="thicker than the mirror gap"):
+        cell_frames(tr[_LINES_COLS], tr, frame=frames, time_s=10.0 * frames, baseline_end_s=95.0,
+                    gap_um=15.0, cell_thickness_um=16.0, cell_id="c0")
+
+
+def test_ladder_phase_length_and_dispersion_per_frame():
+    # exact dispersive resonances of lasecyto.synth (water + 0.035, L = 20 um, zeta = 0.08) shifted by an
+    # index change of 2e-3 from frame 10: per frame the Gouy fraction, the cell-lens focal length
+    # L / sin^2(pi zeta) (check-values.md section 5), the phase optical length n L and the index change
+    from lasecyto.cavity import assign_mode_numbers
+    from lasecyto.cavity.media import get_medium
+    from lasecyto.synth import fp_mode_wavelengths
+
+    gap, zeta, n_frames = 20.0, 0.08, 16
+    rows = []
+    base = fp_mode_wavelengths(gap, index_offset=0.035, zeta=zeta, window_nm=(590.0, 640.0))
+    power = np.array([1.0, 0.6, 0.35, 0.2])
+    for fr in range(n_frames):
+        dn = 2e-3 if fr >= 10 else 0.0
+        modes = fp_mode_wavelengths(gap, index_offset=0.035 + dn, zeta=zeta, window_nm=(580.0, 650.0))
+        for t, (k, q) in enumerate(zip(base["k"], base["q"])):
+            j = np.flatnonzero((modes["k"] == k) & (modes["q"] == q))[0]
+            rows.append((fr, modes["lambda_vac_nm"][j], 1e4 * power[k], t))
+    fr, lam, area, tid = (np.array(v) for v in zip(*rows))
+    tr = _rows_to_tables(fr, lam, np.full(fr.size, 5e-4), area, track_id=tid)
+    tr, ident = assign_mode_numbers(assign_mode_families(tr), medium="water-daimon", gap_um=gap)
+    frames = np.arange(n_frames)
+    out = cell_frames(tr[_LINES_COLS], tr, frame=frames, time_s=10.0 * frames, baseline_end_s=95.0,
+                      gap_um=gap, cell_id="c0", identity=ident)
+    assert np.allclose(out["gouy_fraction"], zeta, atol=2e-5)
+    assert np.allclose(out["lens_focal_length_um"], gap / np.sin(np.pi * zeta) ** 2, rtol=1e-3)
+    assert (out["gouy_fraction_err"] > 0).all() and (out["lens_focal_length_err_um"] > 0).all()
+    water = get_medium("water-daimon")
+    ref = out["reference_nm"].iloc[0]
+    true_nl = gap * (water.n(ref) + 0.035 + np.where(frames >= 10, 2e-3, 0.0))
+    assert np.allclose(out["phase_optical_length_um"], true_nl, atol=2e-5)
+    # dispersion-scaled shifts: the index change comes back to 1e-4 of 2e-3 (second-order terms remain)
+    assert np.allclose(out.loc[frames >= 10, "index_change"], 2e-3, rtol=1e-4)
+    assert np.allclose(out.loc[frames < 10, "index_change"], 0.0, atol=1e-9)
