@@ -10,7 +10,8 @@ import numpy as np
 import pandas as pd
 import tifffile
 
-from ._scenario import DETECTOR, LAMP, SCENARIO, _simulate_experiment
+from ._patterns import write_image_stack
+from ._scenario import DETECTOR, IMAGES, LAMP, SCENARIO, _simulate_experiment
 
 __all__ = ["write_fp_experiment"]
 
@@ -40,7 +41,12 @@ _README = (
     "lasing), whether it was rendered, and its fractional pixel position (pixel centres are "
     "integers). `lamp.json` holds the true pixel-to-air-wavelength polynomial of every stack, the "
     "Ne I air wavelengths rendered in the lamp frames, their photons and the instrument FWHM in "
-    "pixels. Air and vacuum wavelengths are related by the Ciddor (1996) standard-air dispersion; "
+    "pixels. `patterns.csv` (when camera images were written) holds one row per cell and image frame: the "
+    "true pattern centre (row_px, col_px; pixel centres are integers), transverse order, beam radius, "
+    "orientation of the HG axes, whether the cell lased, whether its order changed since its previous lasing "
+    "frame and the expected peak photoelectrons; `cells.csv` then also gives each cell's field, its position "
+    "at the first frame and its first and last order with the time of the change (NaN when none). "
+    "Air and vacuum wavelengths are related by the Ciddor (1996) standard-air dispersion; "
     "water follows Daimon & Masumura (2007) at 20 degC.\n"
 )
 
@@ -85,7 +91,8 @@ def _toml_table(header, items):
     return "\n".join(lines) + "\n"
 
 
-def _manifest_text(sim, *, frame_interval_s, perturbation_s, stack_of_cell, rows_of_cell, seed_note):
+def _manifest_text(sim, *, frame_interval_s, perturbation_s, stack_of_cell, rows_of_cell, seed_note,
+                   image_of_cell):
     gap = SCENARIO["gap_um"]
     desc = _DESCRIPTION.format(gap=gap, dt=frame_interval_s, tp=perturbation_s,
                                frac=SCENARIO["responder_fraction"]) + seed_note
@@ -97,6 +104,7 @@ def _manifest_text(sim, *, frame_interval_s, perturbation_s, stack_of_cell, rows
             ("gap_um", float(gap)),
             ("synthetic", True),
             ("description", desc),
+            ("control_condition", "control"),
         ]),
         _toml_table("[lamp]", [
             ("stack", "lamp/neon.tif"),
@@ -110,6 +118,13 @@ def _manifest_text(sim, *, frame_interval_s, perturbation_s, stack_of_cell, rows
             ("condition", dish["condition"]),
             ("perturbation_s", float(dish["perturbation_s"])),
         ]))
+    for field in sim["fields"]:
+        parts.append(_toml_table("[[fields]]", [
+            ("field", field["field"]),
+            ("dish", field["dish"]),
+            ("images", f"images/{field['field']}.ome.tif"),
+            ("sidecar", f"images/{field['field']}.json"),
+        ]))
     for cell in sim["cells"]:
         cid = cell["cell_id"]
         stack = stack_of_cell[cid]
@@ -117,6 +132,9 @@ def _manifest_text(sim, *, frame_interval_s, perturbation_s, stack_of_cell, rows
                  ("sidecar", str(pathlib.PurePosixPath(stack).with_suffix(".json")))]
         if rows_of_cell[cid] is not None:
             items.append(("rows", [int(r) for r in rows_of_cell[cid]]))
+        if cid in image_of_cell:
+            field, position = image_of_cell[cid]
+            items += [("field", field), ("position_px", [int(v) for v in position])]
         parts.append(_toml_table("[[cells]]", items))
     return "\n".join(parts)
 
@@ -145,7 +163,7 @@ def _write_csv(path, columns):
 
 
 def write_fp_experiment(out_dir, *, n_dishes=4, cells_per_dish=6, n_frames=90, frame_interval_s=10.0,
-                        perturbation_s=300.0, imaging_dish=True, rng=0):
+                        perturbation_s=300.0, imaging_dish=True, images=True, rng=0):
     """Write a synthetic Fabry-Perot cell-laser experiment with its ground truth.
 
     The scenario is invented ("hypertonic shift assay", synthetic data): cells in a
@@ -157,6 +175,15 @@ def write_fp_experiment(out_dir, *, n_dishes=4, cells_per_dish=6, n_frames=90, f
     last dish is recorded with an imaging spectrometer (one stack, one row band per
     cell) when ``imaging_dish`` is true; every other cell has its own 1-D stack.
 
+    With ``images`` (the default) every dish also has one camera stack of the
+    cells' emission patterns (OME-TIFF, cells on a grid, one image per spectrum
+    with the same pump pulse): each cell shows one Hermite- or Laguerre-Gaussian
+    transverse mode that drifts and turns slowly, and 60 % of the responders
+    switch to another order 30-90 s after their onset.  The manifest gives each
+    cell's position in its field (rounded, at the first frame); the truth is in
+    ``truth/patterns.csv`` and the ``image_*`` / ``pattern_*`` columns of
+    ``truth/cells.csv``.  The spectra do not depend on ``images``.
+
     Parameters
     ----------
     out_dir : str or os.PathLike
@@ -167,6 +194,8 @@ def write_fp_experiment(out_dir, *, n_dishes=4, cells_per_dish=6, n_frames=90, f
         Time between frames and time of the medium exchange, seconds.
     imaging_dish : bool
         Record the last dish with an imaging spectrometer.
+    images : bool
+        Record a camera stack of emission patterns per dish.
     rng : int or numpy.random.Generator
         Seeds every random draw; the same seed writes identical files.
 
@@ -178,11 +207,23 @@ def write_fp_experiment(out_dir, *, n_dishes=4, cells_per_dish=6, n_frames=90, f
     sim = _simulate_experiment(n_dishes=n_dishes, cells_per_dish=cells_per_dish, n_frames=n_frames,
                                frame_interval_s=float(frame_interval_s),
                                perturbation_s=float(perturbation_s), imaging_dish=bool(imaging_dish),
-                               rng=rng)
+                               images=bool(images), rng=rng)
     out = pathlib.Path(out_dir)
-    for sub in ("spectra", "lamp", "truth"):
+    for sub in ("spectra", "lamp", "truth") + (("images",) if images else ()):
         (out / sub).mkdir(parents=True, exist_ok=True)
     times = [float(t) for t in sim["times_s"]]
+
+    image_of_cell = {}
+    for field in sim["fields"]:
+        path = out / "images" / f"{field['field']}.ome.tif"
+        stack = field["stack"]
+        write_image_stack(path, iter(stack), n_frames=stack.shape[0], shape=stack.shape[1:],
+                          frame_interval_s=float(frame_interval_s), pixel_size_um=IMAGES["pixel_size_um"])
+        _write_json(out / "images" / f"{field['field']}.json", {
+            "frame_times_s": times, "n_frames": int(stack.shape[0]), "pixel_size_um": IMAGES["pixel_size_um"],
+        })
+        for c in field["cells"]:
+            image_of_cell[c["cell_id"]] = (field["field"], (round(c["image_row_px"]), round(c["image_col_px"])))
 
     stack_of_cell, rows_of_cell = {}, {}
     for stack in sim["stacks"]:
@@ -214,10 +255,18 @@ def write_fp_experiment(out_dir, *, n_dishes=4, cells_per_dish=6, n_frames=90, f
     manifest.write_text(_manifest_text(sim, frame_interval_s=float(frame_interval_s),
                                        perturbation_s=float(perturbation_s),
                                        stack_of_cell=stack_of_cell, rows_of_cell=rows_of_cell,
-                                       seed_note=seed_note), encoding="utf-8")
+                                       seed_note=seed_note, image_of_cell=image_of_cell), encoding="utf-8")
 
     truth = out / "truth"
-    _write_csv(truth / "cells.csv", sim["truth_cells"])
+    truth_cells = dict(sim["truth_cells"])
+    if sim["fields"]:
+        per_cell = {c["cell_id"]: {**c, "image_field": f["field"]} for f in sim["fields"] for c in f["cells"]}
+        for key in ("image_field", "image_row_px", "image_col_px", "pattern_order_start", "pattern_order_end",
+                    "pattern_change_s"):
+            truth_cells[key] = [per_cell[cid][key] for cid in truth_cells["cell_id"]]
+        pd.concat([f["truth"].assign(dish=f["dish"], field=f["field"]) for f in sim["fields"]],
+                  ignore_index=True).to_csv(truth / "patterns.csv", index=False, lineterminator="\n")
+    _write_csv(truth / "cells.csv", truth_cells)
     _write_csv(truth / "cell_frames.csv", sim["truth_cell_frames"])
     _write_csv(truth / "modes.csv", sim["truth_modes"])
     _write_json(truth / "lamp.json", {
