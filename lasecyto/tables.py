@@ -168,12 +168,21 @@ _PATTERNS = (
     _c("fit_message", "str", "", "empty when fit_ok, else the reason"),
 )
 
+_PREDICTIONS = (
+    _c("cell_id", "str", "", "cell identifier"),
+    _c("label", "str", "", "name of the label the model predicts (e.g. condition)"),
+    _c("prediction", "str", "", "predicted class (empty when the cell could not be judged)"),
+    _c("probability", "float", "", "model probability of the predicted class"),
+    _c("prediction_note", "str", "", "empty, or why the cell was not predicted"),
+)
+
 SCHEMAS: dict[str, tuple[Column, ...]] = {
     "lines": _LINES,
     "tracks": _TRACKS,
     "cell_frames": _CELL_FRAMES,
     "cells": _CELLS,
     "patterns": _PATTERNS,
+    "predictions": _PREDICTIONS,
 }
 
 _KIND_CHECK = {

@@ -18,6 +18,7 @@ TITLES = {
              "`features_note` and the feature catalogue of docs/features.md)",
     "patterns": "`patterns`: one row per emission-image region per frame (runs with images; "
                 "`lasecyto patterns`)",
+    "predictions": "`predictions`: one row per cell from `lasecyto classify apply` (plus `p_<class>` per class)",
 }
 
 

@@ -24,7 +24,7 @@ from .. import tables
 from ..exceptions import InputError
 from ..io import read_image_stack
 
-__all__ = ["PatternStage", "cell_patterns", "image_job_fields", "run_pattern_cell", "attach_patterns",
+__all__ = ["PatternStage", "cell_patterns", "image_job_fields", "run_pattern_cell", "attach_patterns", "pattern_stack",
            "PATTERN_FRAME_COLUMNS", "PATTERN_TRACKS_KEY"]
 
 #: key of a result's per-track pattern features (not a table of the run; removed before the results are gathered)
@@ -172,12 +172,7 @@ def cell_patterns(job, *, expected_frames=None) -> PatternStage:
                              field="frames", expected=f"{int(expected_frames)} frames (one image per spectrum)",
                              found=f"{n_frames} frames")
         r0, r1, c0, c1 = _window(job, stack.shape[1:])
-        res = analyze_patterns(_Window(stack, r0, r1, c0, c1), spot_radius_px=p["spot_radius_px"],
-                               threshold_sigma=p["threshold_sigma"], min_area_px=p["min_area_px"],
-                               min_explained=p["min_explained"], max_displacement_px=p["max_displacement_px"],
-                               max_gap_frames=p["max_gap_frames"], change_corr=p["change_corr"],
-                               max_lag_frames=p["max_lag_frames"], block_frames=p["block_frames"],
-                               keep_patches=True)
+        res = analyze_patterns(_Window(stack, r0, r1, c0, c1), keep_patches=True, **_analysis_options(p))
         times = np.asarray(stack.time_s, dtype=float)
     reg = res.regions.copy()
     for col, off in (("centroid_row_px", r0), ("center_row_px", r0), ("centroid_col_px", c0),
@@ -287,3 +282,44 @@ def run_pattern_cell(job):
             "note": "image-only cell: no spectral quantities", **stage.cell, "pattern_note": stage.note}
     return CellResult(job.cell_id, "ok", cell=cell, tables={"cell_frames": cf, "patterns": stage.regions,
                                                             PATTERN_TRACKS_KEY: stage.tracks})
+
+
+def _analysis_options(p):
+    return dict(spot_radius_px=p["spot_radius_px"], threshold_sigma=p["threshold_sigma"], min_area_px=p["min_area_px"],
+                min_explained=p["min_explained"], max_displacement_px=p["max_displacement_px"],
+                max_gap_frames=p["max_gap_frames"], change_corr=p["change_corr"], max_lag_frames=p["max_lag_frames"],
+                block_frames=p["block_frames"])
+
+
+def pattern_stack(stack_path, *, sidecar="auto", parameters=None, pixel_size_um=None, progress=None):
+    """Segment, track, describe and detect pattern changes on one image stack (``lasecyto patterns``).
+
+    Parameters
+    ----------
+    stack_path : str or Path
+        Grayscale (frames, rows, cols) TIFF or OME-TIFF.
+    sidecar : str, Path, None or "auto"
+        JSON sidecar (``frame_times_s``, ``n_frames``, ``pixel_size_um``); "auto" uses
+        the stack path with suffix ``.json`` when it exists.
+    parameters : dict, optional
+        Stage parameters as in a recipe (only ``patterns`` is used).
+    pixel_size_um : float, optional
+        Overrides the pixel size of the metadata.
+    progress : callable, optional
+        ``progress(frames_done, n_frames)``.
+
+    Returns
+    -------
+    (pandas.DataFrame, pandas.DataFrame, str)
+        The validated ``patterns`` table (``cell_id`` empty: no manifest here), the
+        per-track features and the reason when no lasing region was found (else "").
+    """
+    from ..patterns import analyze_patterns
+    from ._params import resolve_parameters
+
+    p = resolve_parameters(parameters or {}, source="parameters")["patterns"]
+    with read_image_stack(stack_path, sidecar=sidecar) as stack:
+        res = analyze_patterns(stack, pixel_size_um=pixel_size_um, progress=progress, **_analysis_options(p))
+    table = res.regions.copy()
+    table.insert(0, "cell_id", np.full(len(table), "", dtype=object))
+    return tables.validate(table, "patterns"), res.tracks, res.reason

@@ -302,8 +302,13 @@ def _triangle_wave(x, amplitude):
     return a - np.abs(np.mod(np.asarray(x, dtype=float) + a, 4 * a) - 2 * a)
 
 
-def _simulate_field(dcells, times_s, truth_frames, rng):
-    """Emission-pattern camera stack (T, rows, cols) of one dish and its truth rows."""
+def _simulate_field(dcells, times_s, truth_frames, rng, *, change_fraction=None):
+    """Emission-pattern camera stack (T, rows, cols) of one dish and its truth rows.
+
+    ``truth_frames`` maps each cell id to its per-frame ``dropout`` and ``pump_factor``;
+    a responder switches order with probability ``change_fraction`` (default
+    ``IMAGES["pattern_change_fraction"]``).
+    """
     im, det = IMAGES, DETECTOR
     n_frames, n = times_s.size, len(dcells)
     nodes, shape = _field_grid(n)
@@ -313,7 +318,8 @@ def _simulate_field(dcells, times_s, truth_frames, rng):
     orders = [PATTERN_ORDERS[int(i)] for i in rng.integers(len(PATTERN_ORDERS), size=n)]
     later, change_s = [], []
     for cell, first in zip(dcells, orders):
-        changes = cell["responder"] and rng.random() < im["pattern_change_fraction"]
+        fraction = im["pattern_change_fraction"] if change_fraction is None else change_fraction
+        changes = cell["responder"] and rng.random() < fraction
         other = [o for o in PATTERN_ORDERS if o != first]
         later.append(other[int(rng.integers(len(other)))] if changes else first)
         change_s.append(cell["onset_s"] + rng.uniform(*im["pattern_change_delay_s"]) if changes else np.nan)
@@ -361,6 +367,30 @@ def _simulate_field(dcells, times_s, truth_frames, rng):
                     "pattern_order_end": later[c], "pattern_change_s": float(change_s[c])}
                    for c, cell in enumerate(dcells)]
     return stack, truth, cells_truth
+
+
+def _simulate_pattern_experiment(*, n_dishes, cells_per_dish, n_frames, frame_interval_s, perturbation_s,
+                                 rng):
+    """Camera stacks only (no spectra): every responder's pattern changes order after its onset."""
+    _validate(n_dishes, cells_per_dish, n_frames, frame_interval_s, perturbation_s)
+    gen = np.random.default_rng(rng)
+    design_rng, *dish_rngs = gen.spawn(1 + n_dishes)
+    dishes, cells = _draw_design(_dish_names(n_dishes), cells_per_dish, perturbation_s, design_rng)
+    times = np.arange(n_frames) * float(frame_interval_s)
+    fields = []
+    for dish, drng in zip(dishes, dish_rngs):
+        dcells = [c for c in cells if c["dish"] == dish["dish"]]
+        pump_rng, field_rng = drng.spawn(2)
+        frames = {}
+        for c in dcells:
+            pump, dropout = _pump_and_dropouts(n_frames, pump_rng)
+            frames[c["cell_id"]] = {"dropout": dropout, "pump_factor": pump}
+        stack, ftruth, ctruth = _simulate_field(dcells, times, frames, field_rng, change_fraction=1.0)
+        fields.append({"field": f"{dish['dish']}-field", "dish": dish["dish"], "stack": stack, "truth": ftruth,
+                       "cells": ctruth})
+    cols = ["cell_id", "dish", "condition", "treated", "responder", "perturbation_s", "onset_s"]
+    truth_cells = {c: [cell[c] for cell in cells] for c in cols}
+    return {"dishes": dishes, "cells": cells, "times_s": times, "fields": fields, "truth_cells": truth_cells}
 
 
 def _simulate_experiment(*, n_dishes, cells_per_dish, n_frames, frame_interval_s, perturbation_s,
