@@ -220,7 +220,8 @@ def finish_experiment(out_tables, *, manifest, parameters):
     """
     out = dict(out_tables)
     cells = out["cells"].copy()
-    summary = {"control_conditions": list(manifest.control_conditions)}
+    summary = {"control_conditions": list(manifest.control_conditions),
+               "seeds": {"flags": parameters["flags"]["seed"], "classify": parameters["classify"]["seed"]}}
     n = len(cells)
     if n == 0:
         summary["changed_rule"] = "none: no cell was processed"
