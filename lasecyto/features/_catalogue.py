@@ -130,7 +130,7 @@ def exponential_response(time_s, values, *, t0_s, t0_window_s=None, noise=None) 
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", OptimizeWarning)
             popt, pcov = curve_fit(model, t, y / scale, p0=p0, sigma=sigma, absolute_sigma=noise is not None,
-                                   bounds=(lo, hi), method="trf", max_nfev=4000)
+                                   bounds=(lo, hi), method="trf", max_nfev=400)
     except (RuntimeError, ValueError) as exc:
         out["fit_message"] = f"fit did not converge: {exc}".split("\n")[0]
         return out

@@ -138,11 +138,7 @@ def _classifier(cells, controls, p):
     if label not in cells.columns:
         summary["note"] = f"label column {label!r} not in the cells table"
         return None, summary
-    try:
-        from ..classify import evaluate_grouped
-    except ImportError as exc:  # pragma: no cover - scikit-learn is optional
-        summary["note"] = str(exc)
-        return None, summary
+    from ..classify import evaluate_grouped
     labelled = cells[label].astype(str).str.len().to_numpy() > 0
     has_feat = ~cells["features_note"].astype(str).str.startswith("too few frames").to_numpy(bool)
     use = labelled & has_feat
@@ -162,7 +158,7 @@ def _classifier(cells, controls, p):
         feats = _classifier_features(sub, p["features"])
         ev = evaluate_grouped(sub, label=label, groups="dish", features=feats, estimator=p["estimator"],
                               n_splits=p["n_splits"], positive=positive, rng=p["seed"])
-    except InputError as exc:
+    except (InputError, ImportError) as exc:  # ImportError: scikit-learn (extra "classify") not installed
         summary["note"] = str(exc)
         return None, summary
     best = np.argmax(ev.probability, axis=1)

@@ -241,7 +241,7 @@ def attach_patterns(job, result):
     n = int(len(frames)) if frames is not None else None
     try:
         stage = cell_patterns(job, expected_frames=n)
-    except InputError as exc:
+    except (InputError, ImportError) as exc:  # ImportError: scikit-image (extra "images") not installed
         result.cell.update(_no_cell_features())
         result.cell["pattern_note"] = f"patterns: {exc}"
         return result

@@ -95,6 +95,8 @@ def _hashes(manifest):
         if c.stack is not None:
             paths[f"{c.cell_id}.stack"] = c.stack
             paths[f"{c.cell_id}.sidecar"] = c.sidecar
+    if manifest.classifier_model is not None:
+        paths["classifier_model"] = manifest.classifier_model
     for f in manifest.fields.values():
         paths[f"{f.field}.images"] = f.images
         if f.sidecar is not None:

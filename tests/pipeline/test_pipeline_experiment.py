@@ -124,3 +124,15 @@ def test_too_few_controls_and_cells_without_features(population):
     assert "3 control cell(s)" in summary["flags"]["note"]
     assert summary["changed_rule"].startswith("per-cell rule")
     assert out["cells"].loc[0, "cv_prediction"] == ""
+
+
+def test_without_scikit_learn_the_run_goes_on(population, monkeypatch):
+    import lasecyto.classify._train as train
+
+    def missing():
+        raise ImportError("lasecyto.classify needs scikit-learn: pip install 'lasecyto[classify]'")
+
+    monkeypatch.setattr(train, "_sklearn", missing)
+    out, summary = finish_experiment({"cells": population}, manifest=_manifest(), parameters=resolve_parameters())
+    assert "needs scikit-learn" in summary["classifier"]["note"]
+    assert (out["cells"]["cv_prediction"] == "").all() and out["cells"]["changed"].any()

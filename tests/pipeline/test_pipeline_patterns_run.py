@@ -55,8 +55,8 @@ def test_image_only_run_with_its_recipe(tmp_path_factory):
     from lasecyto.synth import write_pattern_experiment
 
     root = tmp_path_factory.mktemp("pattern_experiment")
-    manifest = write_pattern_experiment(root / "experiment", n_dishes=4, cells_per_dish=5, n_frames=40,
-                                        perturbation_s=150.0, rng=5)
+    manifest = write_pattern_experiment(root / "experiment", n_dishes=4, cells_per_dish=3, n_frames=30,
+                                        perturbation_s=120.0, rng=5)
     res = run_experiment(manifest, root / "run", recipe=RECIPE, workers=2, show_progress=False, write_report=False)
     assert res.n_failed == 0
     truth = pd.read_csv(manifest.parent / "truth" / "cells.csv")
