@@ -4,9 +4,11 @@ Each table is long and tidy (one row per observation, a plain RangeIndex) and
 carries its units in its column names (``_nm``, ``_px``, ``_s``, ``_um``,
 ``_counts``).  Wavelengths are vacuum wavelengths.  A table may carry extra
 columns; the columns listed here must be present with the stated kind, except
-columns with a ``fill`` value: a stage that has nothing to say about them may
-leave them out, and :func:`validate` adds them filled with that value (NaN,
-``""`` or False), so every table of one name has the same columns.
+those marked optional (``required=False``), which are kind-checked and put in
+schema order when present, and columns with a ``fill`` value: a stage that has
+nothing to say about them may leave them out, and :func:`validate` adds them
+filled with that value (NaN, ``""``, False or 0), so every table of one name
+has those columns.
 
 :func:`validate` is called by every writer and reader in :mod:`lasecyto.io`
 and may be called by any stage on its inputs.
@@ -30,11 +32,12 @@ class Column:
     kind: str  # "int", "float", "bool", "str"
     unit: str  # "" for dimensionless
     description: str
-    fill: object = None  # value of the column when a stage leaves it out (None: required)
+    required: bool = True  # False: optional, kind-checked and put in schema order when present
+    fill: object = None    # value of the column when a stage leaves it out (None: no fill)
 
 
-def _c(name, kind, unit, description, fill=None):
-    return Column(name, kind, unit, description, fill)
+def _c(name, kind, unit, description, required=True, fill=None):
+    return Column(name, kind, unit, description, required, fill)
 
 
 _NAN = float("nan")
@@ -85,14 +88,14 @@ _CELL_FRAMES = (
     _c("delta_optical_length_err_um", "float", "um", "1-sigma uncertainty"),
     _c("index_change", "float", "", "change of the gap's refractive index since baseline (needs gap_um)"),
     _c("index_change_err", "float", "", "1-sigma uncertainty"),
-    _c("pattern_order", "str", "", "best transverse order of the cell's emission image, 'HGmn' or 'LGpl'", ""),
-    _c("pattern_confidence", "float", "", "1 - RSS_best / RSS_second of the order fit", _NAN),
-    _c("pattern_waist_px", "float", "px", "fitted beam radius w of the emission pattern", _NAN),
-    _c("pattern_orientation_deg", "float", "deg", "turn of the pattern's HG axes from +col towards +row", _NAN),
-    _c("pattern_corr", "float", "", "correlation with the cell's previous pattern (aligned)", _NAN),
-    _c("pattern_change", "bool", "", "pattern_corr fell below the change threshold", False),
+    _c("pattern_order", "str", "", "best transverse order of the cell's emission image, 'HGmn' or 'LGpl'", fill=""),
+    _c("pattern_confidence", "float", "", "1 - RSS_best / RSS_second of the order fit", fill=_NAN),
+    _c("pattern_waist_px", "float", "px", "fitted beam radius w of the emission pattern", fill=_NAN),
+    _c("pattern_orientation_deg", "float", "deg", "turn of the pattern's HG axes from +col towards +row", fill=_NAN),
+    _c("pattern_corr", "float", "", "correlation with the cell's previous pattern (aligned)", fill=_NAN),
+    _c("pattern_change", "bool", "", "pattern_corr fell below the change threshold", fill=False),
     _c("pattern_baseline_corr", "float", "",
-       "correlation with the cell's mean pattern before the perturbation (aligned)", _NAN),
+       "correlation with the cell's mean pattern before the perturbation (aligned)", fill=_NAN),
 )
 
 _CELLS = (
@@ -111,22 +114,23 @@ _CELLS = (
     _c("onset_s", "float", "s", "time the change began (NaN when no change)"),
     _c("onset_err_s", "float", "s", "uncertainty of onset_s"),
     _c("changed", "bool", "", "the cell changed state (rule in DEVELOPERS.md)"),
-    _c("self_changed", "bool", "", "the change is significant and large against the cell's own baseline", False),
-    _c("change_score", "float", "", "robust z-score of the flagged feature against the control population", _NAN),
-    _c("p_value", "float", "", "p-value of change_score, calibrated on the controls", _NAN),
-    _c("q_value", "float", "", "Benjamini-Hochberg q-value across the scored cells", _NAN),
-    _c("is_control", "bool", "", "the cell belongs to a control condition of the manifest", False),
-    _c("pattern_dominant_order", "str", "", "most frequent well-fitted transverse order of the emission image", ""),
-    _c("pattern_decorrelation_time_s", "float", "s", "lag at which the pattern correlation falls to 1/e", _NAN),
-    _c("pattern_change_count", "int", "", "pattern change events over the acquisition", 0),
+    _c("self_changed", "bool", "", "the change is significant and large against the cell's own baseline", fill=False),
+    _c("change_score", "float", "", "robust z-score of the flagged feature against the control population", fill=_NAN),
+    _c("p_value", "float", "", "p-value of change_score, calibrated on the controls", fill=_NAN),
+    _c("q_value", "float", "", "Benjamini-Hochberg q-value across the scored cells", fill=_NAN),
+    _c("is_control", "bool", "", "the cell belongs to a control condition of the manifest", fill=False),
+    _c("pattern_dominant_order", "str", "", "most frequent well-fitted transverse order of the emission image",
+       fill=""),
+    _c("pattern_decorrelation_time_s", "float", "s", "lag at which the pattern correlation falls to 1/e", fill=_NAN),
+    _c("pattern_change_count", "int", "", "pattern change events over the acquisition", fill=0),
     _c("pattern_first_change_s", "float", "s",
-       "time of the first pattern change event at or after perturbation_s", _NAN),
-    _c("cv_prediction", "str", "", "out-of-fold (grouped by dish) predicted label", ""),
-    _c("cv_probability", "float", "", "out-of-fold probability of cv_prediction", _NAN),
-    _c("model_prediction", "str", "", "label predicted by the manifest's classifier model", ""),
-    _c("model_probability", "float", "", "probability of model_prediction", _NAN),
+       "time of the first pattern change event at or after perturbation_s", fill=_NAN),
+    _c("cv_prediction", "str", "", "out-of-fold (grouped by dish) predicted label", fill=""),
+    _c("cv_probability", "float", "", "out-of-fold probability of cv_prediction", fill=_NAN),
+    _c("model_prediction", "str", "", "label predicted by the manifest's classifier model", fill=""),
+    _c("model_probability", "float", "", "probability of model_prediction", fill=_NAN),
     _c("anomaly_score", "float", "", "isolation-forest anomaly score against the controls (higher: more unusual)",
-       _NAN),
+       fill=_NAN),
 )
 
 _PATTERNS = (
@@ -219,7 +223,7 @@ def validate(table: pd.DataFrame, name: str, *, path=None) -> pd.DataFrame:
     if not isinstance(table, pd.DataFrame):
         raise SchemaError("not a table", path=where, expected="a pandas DataFrame",
                           found=type(table).__name__)
-    cols = _schema(name)
+    cols = tuple(c for c in _schema(name) if c.required or c.fill is not None or c.name in table.columns)
     missing = [c.name for c in cols if c.name not in table.columns and c.fill is None]
     if missing:
         raise SchemaError("missing columns", path=where, field=", ".join(missing),
@@ -251,5 +255,6 @@ def empty(name: str) -> pd.DataFrame:
 def describe(name: str) -> str:
     """The schema as a Markdown table (used in the docs)."""
     rows = ["| column | kind | unit | meaning |", "|---|---|---|---|"]
-    rows += [f"| `{c.name}` | {c.kind} | {c.unit or '-'} | {c.description} |" for c in _schema(name)]
+    rows += [f"| `{c.name}` | {c.kind}{'' if c.required else ' (optional)'} | {c.unit or '-'} | {c.description} |"
+             for c in _schema(name)]
     return "\n".join(rows)
