@@ -136,3 +136,30 @@ def test_without_scikit_learn_the_run_goes_on(population, monkeypatch):
     out, summary = finish_experiment({"cells": population}, manifest=_manifest(), parameters=resolve_parameters())
     assert "needs scikit-learn" in summary["classifier"]["note"]
     assert (out["cells"]["cv_prediction"] == "").all() and out["cells"]["changed"].any()
+
+
+def test_no_false_onset_on_1000_frames_of_noise(population):
+    # check-values.md section 13 "test use": no false alarm on 1000 frames of pure noise, through the catalogue
+    # and the population step of a run (the noise cell is scored against the 110 controls)
+    import pandas as pd
+
+    from lasecyto import tables
+    from lasecyto.features import cell_features, summarize_cell
+
+    from cellgen import make_cell_frames
+
+    rng = np.random.default_rng(77)
+    cf, _ = make_cell_frames("noise", rng=rng, responder=False, n_frames=1000, perturbation_s=200.0)
+    sd = 2e-6
+    cf["index_change"] = np.where(cf["lasing"], sd * rng.standard_normal(len(cf)), np.nan)
+    cf["index_change_err"] = np.where(cf["lasing"], sd, np.nan)
+    cf["relative_shift"] = 0.7 * cf["index_change"]
+    feats = cell_features(cf, perturbation_s=200.0)
+    assert feats["dn_n_changepoints"] == 0 and np.isnan(feats["dn_onset_s"])
+    row = {"cell_id": "noise", "dish": "D03", "condition": "treated", "perturbation_s": 200.0,
+           **summarize_cell(cf, perturbation_s=200.0), **feats, "responder": False, "onset_true_s": np.nan}
+    row = tables.validate(pd.DataFrame([row]), "cells")
+    cells = tables.validate(pd.concat([population, row], ignore_index=True), "cells")
+    out, _ = finish_experiment({"cells": cells}, manifest=_manifest(), parameters=resolve_parameters())
+    last = out["cells"].iloc[-1]
+    assert not last["changed"] and not last["self_changed"] and np.isnan(last["onset_s"])
