@@ -54,6 +54,7 @@ __all__ = [
     "match_tracks_to_cells",
     "pattern_correlation",
     "decorrelation_time",
+    "reference_correlation",
     "MODE_ORDERS",
     "hg_intensity",
     "lg_intensity",
