@@ -4,9 +4,11 @@ Each table is long and tidy (one row per observation, a plain RangeIndex) and
 carries its units in its column names (``_nm``, ``_px``, ``_s``, ``_um``,
 ``_counts``).  Wavelengths are vacuum wavelengths.  A table may carry extra
 columns; the columns listed here must be present with the stated kind, except
-those marked optional (``required=False``: quantities a stage adds when it can
-compute them, e.g. Fabry-Perot ladder quantities), which are kind-checked and
-put in schema order when present.
+those marked optional (``required=False``), which are kind-checked and put in
+schema order when present, and columns with a ``fill`` value: a stage that has
+nothing to say about them may leave them out, and :func:`validate` adds them
+filled with that value (NaN, ``""``, False or 0), so every table of one name
+has those columns.
 
 :func:`validate` is called by every writer and reader in :mod:`lasecyto.io`
 and may be called by any stage on its inputs.
@@ -30,11 +32,15 @@ class Column:
     kind: str  # "int", "float", "bool", "str"
     unit: str  # "" for dimensionless
     description: str
-    required: bool = True
+    required: bool = True  # False: optional, kind-checked and put in schema order when present
+    fill: object = None    # value of the column when a stage leaves it out (None: no fill)
 
 
-def _c(name, kind, unit, description, required=True):
-    return Column(name, kind, unit, description, required)
+def _c(name, kind, unit, description, required=True, fill=None):
+    return Column(name, kind, unit, description, required, fill)
+
+
+_NAN = float("nan")
 
 
 _LINES = (
@@ -78,7 +84,7 @@ _CELL_FRAMES = (
     _c("n_lines", "int", "", "lines fitted in this frame"),
     _c("n_lasing", "int", "", "lines judged lasing"),
     _c("total_area_counts", "float", "counts", "summed area of the lasing lines"),
-    _c("lasing", "bool", "", "at least one lasing line in the frame"),
+    _c("lasing", "bool", "", "at least one lasing line in the frame (image-only cells: a lasing region)"),
     _c("fsr_nm", "float", "nm", "free spectral range of the main comb family at its centre"),
     _c("optical_length_um", "float", "um", "group optical length n_g L from the comb spacing"),
     _c("optical_length_err_um", "float", "um", "1-sigma uncertainty"),
@@ -98,6 +104,14 @@ _CELL_FRAMES = (
     _c("lens_focal_length_um", "float", "um",
        "focal length of the cell lens on a flat mirror, L / sin^2(pi gouy_fraction) (needs gap_um)", False),
     _c("lens_focal_length_err_um", "float", "um", "1-sigma uncertainty", False),
+    _c("pattern_order", "str", "", "best transverse order of the cell's emission image, 'HGmn' or 'LGpl'", fill=""),
+    _c("pattern_confidence", "float", "", "1 - RSS_best / RSS_second of the order fit", fill=_NAN),
+    _c("pattern_waist_px", "float", "px", "fitted beam radius w of the emission pattern", fill=_NAN),
+    _c("pattern_orientation_deg", "float", "deg", "turn of the pattern's HG axes from +col towards +row", fill=_NAN),
+    _c("pattern_corr", "float", "", "correlation with the cell's previous pattern (aligned)", fill=_NAN),
+    _c("pattern_change", "bool", "", "pattern_corr fell below the change threshold", fill=False),
+    _c("pattern_baseline_corr", "float", "",
+       "correlation with the cell's mean pattern before the perturbation (aligned)", fill=_NAN),
 )
 
 _CELLS = (
@@ -116,6 +130,70 @@ _CELLS = (
     _c("onset_s", "float", "s", "time the change began (NaN when no change)"),
     _c("onset_err_s", "float", "s", "uncertainty of onset_s"),
     _c("changed", "bool", "", "the cell changed state (rule in DEVELOPERS.md)"),
+    _c("self_changed", "bool", "", "the change is significant and large against the cell's own baseline", fill=False),
+    _c("change_score", "float", "", "robust z-score of the flagged feature against the control population", fill=_NAN),
+    _c("p_value", "float", "", "p-value of change_score, calibrated on the controls", fill=_NAN),
+    _c("q_value", "float", "", "Benjamini-Hochberg q-value across the scored cells", fill=_NAN),
+    _c("is_control", "bool", "", "the cell belongs to a control condition of the manifest", fill=False),
+    _c("pattern_dominant_order", "str", "", "most frequent well-fitted transverse order of the emission image",
+       fill=""),
+    _c("pattern_decorrelation_time_s", "float", "s", "lag at which the pattern correlation falls to 1/e", fill=_NAN),
+    _c("pattern_change_count", "int", "", "pattern change events over the acquisition", fill=0),
+    _c("pattern_first_change_s", "float", "s",
+       "time of the first pattern change event at or after perturbation_s", fill=_NAN),
+    _c("cv_prediction", "str", "", "out-of-fold (grouped by dish) predicted label", fill=""),
+    _c("cv_probability", "float", "", "out-of-fold probability of cv_prediction", fill=_NAN),
+    _c("model_prediction", "str", "", "label predicted by the manifest's classifier model", fill=""),
+    _c("model_probability", "float", "", "probability of model_prediction", fill=_NAN),
+    _c("anomaly_score", "float", "", "isolation-forest anomaly score against the controls (higher: more unusual)",
+       fill=_NAN),
+)
+
+_PATTERNS = (
+    _c("cell_id", "str", "", "manifest cell of the region (empty when not matched to one)"),
+    _c("frame", "int", "", "frame index, from 0"),
+    _c("time_s", "float", "s", "frame time"),
+    _c("track_id", "int", "", "region track (cell identity within the image stack), from 0"),
+    _c("region", "int", "", "region label within the frame, from 1"),
+    _c("centroid_row_px", "float", "px", "background-subtracted intensity centroid, row"),
+    _c("centroid_col_px", "float", "px", "background-subtracted intensity centroid, column"),
+    _c("area_px", "int", "px", "region area in pixels"),
+    _c("area_um2", "float", "um2", "region area (NaN without a pixel size)"),
+    _c("peak_counts", "float", "counts", "brightest pixel above background"),
+    _c("total_counts", "float", "counts", "summed signal above background"),
+    _c("n_saturated_px", "int", "px", "saturated pixels in the region"),
+    _c("saturated", "bool", "", "the region holds a saturated pixel"),
+    _c("background_counts", "float", "counts", "background level at the centroid"),
+    _c("noise_counts", "float", "counts", "background noise (robust standard deviation) of the frame"),
+    _c("center_row_px", "float", "px", "fitted mode centre, row"),
+    _c("center_col_px", "float", "px", "fitted mode centre, column"),
+    _c("waist_px", "float", "px", "fitted beam radius w of the best order"),
+    _c("waist_um", "float", "um", "fitted beam radius (NaN without a pixel size)"),
+    _c("orientation_deg", "float", "deg", "turn of the HG axes from +col towards +row (NaN for round orders)"),
+    _c("mode_order", "str", "", "best order, 'HGmn' or 'LGpl'"),
+    _c("mode_status", "str", "", "ok, mixed, irregular or failed"),
+    _c("mode_confidence", "float", "", "1 - RSS_best / RSS_second"),
+    _c("mode_explained", "float", "", "fraction of the region's variance explained by the best order"),
+    _c("mode_second_order", "str", "", "second-best order"),
+    _c("mode_mixture_explained", "float", "", "fraction explained by the best two-order mixture"),
+    _c("sigma_major_px", "float", "px", "square root of the major second moment"),
+    _c("sigma_minor_px", "float", "px", "square root of the minor second moment"),
+    _c("moment_orientation_deg", "float", "deg", "major axis from +col towards +row"),
+    _c("eccentricity", "float", "", "sqrt(1 - minor/major) of the second moments"),
+    _c("n_lobes", "int", "", "bright lobes (a ring counts as one)"),
+    _c("ring_radius_px", "float", "px", "radius of the azimuthal-mean maximum around the fitted centre"),
+    _c("pattern_corr", "float", "", "correlation with the track's previous pattern (aligned, NaN at its first frame)"),
+    _c("pattern_change", "bool", "", "pattern_corr below the change threshold"),
+    _c("fit_ok", "bool", "", "the mode fit succeeded"),
+    _c("fit_message", "str", "", "empty when fit_ok, else the reason"),
+)
+
+_PREDICTIONS = (
+    _c("cell_id", "str", "", "cell identifier"),
+    _c("label", "str", "", "name of the label the model predicts (e.g. condition)"),
+    _c("prediction", "str", "", "predicted class (empty when the cell could not be judged)"),
+    _c("probability", "float", "", "model probability of the predicted class"),
+    _c("prediction_note", "str", "", "empty, or why the cell was not predicted"),
 )
 
 SCHEMAS: dict[str, tuple[Column, ...]] = {
@@ -123,6 +201,8 @@ SCHEMAS: dict[str, tuple[Column, ...]] = {
     "tracks": _TRACKS,
     "cell_frames": _CELL_FRAMES,
     "cells": _CELLS,
+    "patterns": _PATTERNS,
+    "predictions": _PREDICTIONS,
 }
 
 _KIND_CHECK = {
@@ -159,13 +239,16 @@ def validate(table: pd.DataFrame, name: str, *, path=None) -> pd.DataFrame:
     if not isinstance(table, pd.DataFrame):
         raise SchemaError("not a table", path=where, expected="a pandas DataFrame",
                           found=type(table).__name__)
-    cols = tuple(c for c in _schema(name) if c.required or c.name in table.columns)
-    missing = [c.name for c in cols if c.name not in table.columns]
+    cols = tuple(c for c in _schema(name) if c.required or c.fill is not None or c.name in table.columns)
+    missing = [c.name for c in cols if c.name not in table.columns and c.fill is None]
     if missing:
         raise SchemaError("missing columns", path=where, field=", ".join(missing),
                           expected="present", found="absent")
     out = {}
     for c in cols:
+        if c.name not in table.columns:
+            out[c.name] = np.full(len(table), c.fill, dtype=_KIND_DTYPE[c.kind])
+            continue
         s = table[c.name]
         if len(s) and not _KIND_CHECK[c.kind](s.dtype):
             raise SchemaError("wrong column type", path=where, field=c.name,

@@ -61,3 +61,31 @@ def make_experiment(*, n_dishes, cells_per_dish, rng, responder_fraction=SCENARI
             rows.append({"cell_id": f"{d:02d}-{j:02d}", "dish": f"D{d:02d}",
                          "condition": "treated" if treated else "control", **truth, **feats})
     return pd.DataFrame(rows)
+
+
+def make_run_cells(*, n_dishes, cells_per_dish, rng, n_frames=60, perturbation_s=200.0):
+    """A cells table as a run gathers it before its population steps (summarize_cell + cell_features per cell).
+
+    Half the dishes are "control", half "treated"; truth columns ``responder`` and ``onset_true_s`` are added.
+    """
+    from lasecyto import tables
+    from lasecyto.features import summarize_cell
+
+    gen = np.random.default_rng(rng)
+    rows = []
+    for d in range(n_dishes):
+        treated = d >= n_dishes // 2
+        dish_length = 27.66 + 0.3 * gen.standard_normal()
+        dish_bleach = gen.uniform(*SCENARIO["bleach_tau_s"])
+        for j in range(cells_per_dish):
+            responder = bool(treated and gen.random() < SCENARIO["responder_fraction"])
+            cid = f"{d:02d}-{j:02d}"
+            cf, truth = make_cell_frames(cid, rng=gen, responder=responder, n_frames=n_frames,
+                                         perturbation_s=perturbation_s, dish_length_um=dish_length,
+                                         bleach_tau_s=dish_bleach)
+            summary = summarize_cell(cf, perturbation_s=perturbation_s)
+            feats = cell_features(cf, perturbation_s=perturbation_s)
+            rows.append({"cell_id": cid, "dish": f"D{d:02d}", "condition": "treated" if treated else "control",
+                         "perturbation_s": perturbation_s, **summary, **feats, "responder": responder,
+                         "onset_true_s": truth["onset_s"]})
+    return tables.validate(pd.DataFrame(rows), "cells")

@@ -14,11 +14,11 @@ def fp_experiment(tmp_path_factory):
 
 @pytest.fixture(scope="session")
 def fp_run(fp_experiment, tmp_path_factory):
-    """The pipeline run over :func:`fp_experiment` (serial)."""
+    """The pipeline run over :func:`fp_experiment` (two worker processes, as the demo runs)."""
     from lasecyto.pipeline import run_experiment
 
     out = tmp_path_factory.mktemp("fp_run")
-    return run_experiment(fp_experiment, out, workers=1, show_progress=False)
+    return run_experiment(fp_experiment, out, workers=2, show_progress=False)
 
 
 @pytest.fixture(scope="session")

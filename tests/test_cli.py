@@ -13,7 +13,8 @@ def test_version(capsys):
     assert __version__ in capsys.readouterr().out
 
 
-@pytest.mark.parametrize("command", [[], ["run"], ["demo"], ["report"], ["lines"]])
+@pytest.mark.parametrize("command", [[], ["run"], ["demo"], ["report"], ["lines"], ["patterns"], ["classify"],
+                                     ["classify", "train"], ["classify", "apply"]])
 def test_help_of_every_command(command, capsys):
     with pytest.raises(SystemExit) as info:
         main(command + ["--help"])

@@ -14,7 +14,11 @@ TITLES = {
     "lines": "`lines`: one row per fitted line per frame per cell",
     "tracks": "`tracks`: the lasing lines that were linked into mode tracks (plus `comb_index`)",
     "cell_frames": "`cell_frames`: one row per cell and frame",
-    "cells": "`cells`: one row per cell (plus `quantity`, the series judged, and `note`)",
+    "cells": "`cells`: one row per cell (plus `quantity`, the series judged, `note`, `pattern_note`, "
+             "`features_note` and the feature catalogue of docs/features.md)",
+    "patterns": "`patterns`: one row per emission-image region per frame (runs with images; "
+                "`lasecyto patterns`)",
+    "predictions": "`predictions`: one row per cell from `lasecyto classify apply` (plus `p_<class>` per class)",
 }
 
 
@@ -27,7 +31,7 @@ def main():
     path = Path(__file__).resolve().parents[1] / "README.md"
     text = path.read_text()
     parts = []
-    for name in ("lines", "tracks", "cell_frames", "cells"):
+    for name in TITLES:
         schema = tables.describe(name)
         if name == "tracks":
             n_lines = len(tables.SCHEMAS["lines"])
@@ -35,7 +39,7 @@ def main():
             schema = "\n".join(rows[:2] + ["| *all `lines` columns* | | | |"] + rows[2 + n_lines:])
         parts.append(f"#### {TITLES[name]}\n\n{schema}\n")
     text = replace(text, "tables", "\n".join(parts))
-    rule = "\n".join(textwrap.wrap(" ".join(CHANGE_RULE.split()), 96))
+    rule = "\n".join(textwrap.wrap(" ".join(CHANGE_RULE.split()), 96, break_on_hyphens=False))
     text = replace(text, "rule", rule + "\n")
     path.write_text(text)
 

@@ -6,10 +6,13 @@ split_leak         grouped versus ungrouped AUC: how much a split ignoring dishe
 anomaly_scores     unsupervised isolation-forest score against reference cells
 save_model         write a model as JSON (numbers and names only)
 load_model         read it back, refusing another feature schema or package version
+load_model_for_table  the same, checking that a cells table carries the model's features
+predict_cells      per-cell predictions of a model (cells it cannot judge get a note)
 
 Needs scikit-learn (the optional extra ``classify``); prediction of a loaded model uses numpy only.
 """
 
+from ._apply import load_model_for_table, model_features, predict_cells
 from ._model import CellClassifier, feature_matrix
 from ._persist import MODEL_FORMAT, MODEL_FORMAT_VERSION, load_model, save_model
 from ._train import (
@@ -31,6 +34,9 @@ __all__ = [
     "evaluate_grouped",
     "feature_matrix",
     "load_model",
+    "load_model_for_table",
+    "model_features",
+    "predict_cells",
     "save_model",
     "split_leak",
     "train_classifier",

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 import os
@@ -31,6 +32,13 @@ def _num(a):
     return [one(v) for v in arr.ravel()] if arr.ndim else one(arr)
 
 
+def schema_digest(features, classes) -> str:
+    """SHA-256 of the feature and class lists: binds a model file's arrays to the columns they were fitted on."""
+    text = json.dumps({"features": [str(f) for f in features], "classes": [str(c) for c in classes]},
+                      separators=(",", ":"))
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
 def _to_doc(model: CellClassifier) -> dict:
     if model.kind == "logistic":
         params = {"coef": _num(model.params["coef"]), "coef_shape": list(np.shape(model.params["coef"])),
@@ -43,7 +51,8 @@ def _to_doc(model: CellClassifier) -> dict:
                              "value": _num(t["value"])} for t in model.params["trees"]]}
     return {"format": MODEL_FORMAT, "format_version": MODEL_FORMAT_VERSION, "lasecyto_version": __version__,
             "kind": model.kind, "label": model.label, "features": list(model.features),
-            "classes": list(model.classes), "impute": _num(model.impute), "mean": _num(model.mean),
+            "classes": list(model.classes), "schema_sha256": schema_digest(model.features, model.classes),
+            "impute": _num(model.impute), "mean": _num(model.mean),
             "scale": _num(model.scale), "params": params, "metadata": model.metadata}
 
 
@@ -131,6 +140,10 @@ def load_model(path, *, feature_schema, check_version=True) -> CellClassifier:
             (f"; schema features not in model: {lack}" if lack else "")
         raise InputError("model feature schema does not match", path=path, field="features",
                          expected=f"{schema}", found=detail)
+    if doc.get("schema_sha256") != schema_digest(feats, doc.get("classes") or []):
+        raise InputError("model file altered: its feature or class list does not match its schema digest",
+                         path=path, field="schema_sha256", expected="the digest written with the model",
+                         found="a different feature or class list")
     kind = doc.get("kind")
     if kind not in KINDS:
         raise InputError("unknown model kind", path=path, field="kind", expected=f"one of {KINDS}", found=repr(kind))

@@ -88,7 +88,8 @@ def _estimator(kind, rng, options):
 
 
 def _fit(x, y, classes, kind, rng, options):
-    impute = np.array([np.median(c[np.isfinite(c)]) for c in x.T])
+    # a feature without any finite training value (possible within a fold) is held at 0
+    impute = np.array([np.median(c[np.isfinite(c)]) if np.isfinite(c).any() else 0.0 for c in x.T])
     xi = np.where(np.isfinite(x), x, impute[None, :])
     mean = xi.mean(axis=0)
     scale = xi.std(axis=0)

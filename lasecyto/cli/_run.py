@@ -2,15 +2,16 @@
 
 from __future__ import annotations
 
+import os
 import sys
 from pathlib import Path
 
 from ._common import EXIT_OK, EXIT_PARTIAL
 
 
-def _add_run_options(p):
-    p.add_argument("--workers", type=int, default=1, metavar="N",
-                   help="worker processes (default 1; each opens its own files)")
+def _add_run_options(p, workers=1):
+    p.add_argument("--workers", type=int, default=workers, metavar="N",
+                   help=f"worker processes (default {workers}; each opens its own files)")
     p.add_argument("--recipe", type=Path, default=None, metavar="FILE",
                    help="recipe of stage parameters (TOML); the manifest's [parameters] override it")
     p.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
@@ -34,14 +35,14 @@ def register(sub):
     demo.add_argument("--out", type=Path, default=Path("demo-output"), metavar="DIR",
                       help="output directory (default: demo-output)")
     demo.add_argument("--seed", type=int, default=2026, help="seed of the generator (default 2026)")
-    _add_run_options(demo)
+    _add_run_options(demo, workers=min(2, os.cpu_count() or 1))
     demo.set_defaults(handler=handle_demo)
 
 
 def _summary(result, out=sys.stdout):
     cells = result.tables["cells"]
-    print(f"\ntables:     {result.out_dir / 'tables'}  (lines, tracks, cell_frames, cells; .parquet and .csv)",
-          file=out)
+    names = ", ".join(n for n in result.tables if n in ("lines", "tracks", "cell_frames", "patterns", "cells"))
+    print(f"\ntables:     {result.out_dir / 'tables'}  ({names}; .parquet and .csv)", file=out)
     print(f"run record: {result.out_dir / 'run_record.json'}", file=out)
     if result.report is not None:
         print(f"report:     {result.report}", file=out)
@@ -52,13 +53,39 @@ def _summary(result, out=sys.stdout):
         for cond, part in g:
             n, k = len(part), int(part["changed"].sum())
             med = part.loc[part["changed"], "index_change"].median()
-            extra = f"   median change of flagged cells {med:+.2e}" if k else ""
+            extra = f"   median change of flagged cells {med:+.2e}" if k and med == med else ""
             print(f"  {cond:<{width}}  {k:>3} of {n:>3} changed{extra}", file=out)
+        _analysis_summary(result.record.get("analysis") or {}, cells, out)
     failed = [it for it in result.record["items"] if it["status"] != "ok"]
     if failed:
         print(f"\n{len(failed)} item(s) failed:", file=out)
         for it in failed:
             print(f"  {it['item']}: {it['error']}", file=out)
+
+
+def _analysis_summary(analysis, cells, out):
+    """How ``changed`` was decided, the classifier's grouped-CV scores and pattern-stage problems."""
+    print(f"  changed: {analysis.get('changed_rule', 'per-cell rule')}", file=out)
+    flags = analysis.get("flags") or {}
+    if "n_controls" in flags:
+        print(f"  flags: {flags['feature']} against {flags['n_controls']} control cells "
+              f"({', '.join(analysis.get('control_conditions', []))}), BH FDR {100 * flags['fdr']:g} %, "
+              f"{flags['method']} p-values", file=out)
+    clf = analysis.get("classifier") or {}
+    if clf.get("roc_auc") is not None:
+        print(f"  classifier ({clf['estimator']}, {clf['label']}): grouped-CV ROC AUC {clf['roc_auc']:.3f}, "
+              f"balanced accuracy {clf['balanced_accuracy']:.3f} ({clf['n_splits']} folds by dish)", file=out)
+    elif clf.get("note"):
+        print(f"  classifier: not scored: {clf['note']}", file=out)
+    model = analysis.get("model") or {}
+    if model.get("error"):
+        print(f"  classifier model: not applied: {model['error']}", file=out)
+    if "pattern_note" in cells.columns:
+        notes = cells.loc[cells["pattern_note"].astype(str) != "", ["cell_id", "pattern_note"]]
+        if len(notes):
+            print(f"  patterns: {len(notes)} cell(s) without a pattern:", file=out)
+            for r in notes.head(5).itertuples():
+                print(f"    {r.cell_id}: {r.pattern_note}", file=out)
 
 
 def _demo_truth_check(experiment_dir, result, out=sys.stdout):
@@ -78,6 +105,23 @@ def _demo_truth_check(experiment_dir, result, out=sys.stdout):
     print(f"  responders flagged       {int(resp['changed'].sum())} of {len(resp)}", file=out)
     print(f"  non-responders flagged   {int(nonr['changed'].sum())} of {len(nonr)}", file=out)
     print(f"  controls flagged         {int(ctrl['changed'].sum())} of {len(ctrl)}", file=out)
+    truth = truth.rename(columns={"onset_s": "onset_true_s"})
+    found = resp.merge(truth[["cell_id", "onset_true_s"]], on="cell_id")
+    err = (found["onset_s"] - found["onset_true_s"]).abs().dropna()
+    if len(err):
+        print(f"  onset error of flagged responders, median  {err.median():.1f} s", file=out)
+    if "pattern_order_end" in truth.columns and "pattern_change_count" in cells.columns:
+        pt = cells.merge(truth[["cell_id", "pattern_order_start", "pattern_order_end", "pattern_change_s"]],
+                         on="cell_id")
+        has = pt["pattern_change_s"].notna()
+        frame_s = float(result.tables["cell_frames"]["time_s"].diff().median())
+        hit = has & ((pt["pattern_first_change_s"] - pt["pattern_change_s"]).abs() <= frame_s)
+        false = ~has & (pt["pattern_change_count"] > 0)
+        dominant = (pt["pattern_dominant_order"] == pt["pattern_order_start"]) | \
+            (pt["pattern_dominant_order"] == pt["pattern_order_end"])
+        print(f"  pattern order changes found within a frame  {int(hit.sum())} of {int(has.sum())}; "
+              f"cells with a false change {int(false.sum())} of {int((~has).sum())}", file=out)
+        print(f"  dominant transverse order one of the true ones  {int(dominant.sum())} of {len(pt)}", file=out)
 
 
 def _run(args, manifest, run_dir):

@@ -16,6 +16,7 @@ from ._allan import AllanDeviation, allan_deviation, allan_slope
 from ._catalogue import (
     CELL_FEATURE_KEYS,
     DEFAULT_ALLAN_M,
+    RESPONSE_FEATURE_KEYS,
     SERIES_KEYS,
     TRACK_FEATURE_COLUMNS,
     cell_features,
@@ -35,6 +36,7 @@ __all__ = [
     "CHANGE_RULE",
     "ChangePoints",
     "DEFAULT_ALLAN_M",
+    "RESPONSE_FEATURE_KEYS",
     "SERIES_KEYS",
     "TRACK_FEATURE_COLUMNS",
     "allan_deviation",

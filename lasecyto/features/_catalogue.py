@@ -17,7 +17,7 @@ from ._changepoint import changepoint_onset, difference_noise
 from ._stats import robust_std
 
 __all__ = ["series_features", "track_features", "cell_features", "exponential_response",
-           "SERIES_KEYS", "CELL_FEATURE_KEYS", "TRACK_FEATURE_COLUMNS", "DEFAULT_ALLAN_M"]
+           "SERIES_KEYS", "CELL_FEATURE_KEYS", "RESPONSE_FEATURE_KEYS", "TRACK_FEATURE_COLUMNS", "DEFAULT_ALLAN_M"]
 
 DEFAULT_ALLAN_M = (1, 2, 4, 8)
 _MIN_SETTLED = 5
@@ -40,7 +40,7 @@ def _series_keys(prefix, m_allan):
 
 
 def _cell_keys(m_allan):
-    keys = _series_keys("dn", m_allan) + _series_keys("rs", m_allan)
+    keys = _series_keys("dn", m_allan) + _series_keys("rs", m_allan) + _series_keys("pc", m_allan)
     for _, stem, unit in _CAVITY:
         keys += [f"{stem}_baseline{unit}", f"{stem}_noise{unit}", f"{stem}_change{unit}",
                  f"{stem}_change_err{unit}"]
@@ -51,6 +51,15 @@ def _cell_keys(m_allan):
 
 
 CELL_FEATURE_KEYS = _cell_keys(DEFAULT_ALLAN_M)
+
+#: the catalogue features that describe a cell's response after the perturbation (the default
+#: inputs of the classifier in a run): changes, steps, slopes and fitted amplitudes of its series,
+#: changes of its cavity quantities, linewidth, mode hops, intensity and pattern dynamics
+RESPONSE_FEATURE_KEYS = tuple(
+    [f"{p}_{k}" for p in ("dn", "rs", "pc") for k in ("change", "step", "slope_per_s", "amplitude")]
+    + ["optical_length_change_um", "diameter_change_um", "medium_index_change", "fwhm_change_nm",
+       "track_shift_median_nm", "mode_hop_rate_per_s", "bleach_rate_per_s", "dropout_fraction",
+       "pattern_decorrelation_time_s", "pattern_corr_mean", "pattern_change_rate_per_s"])
 
 
 def _slope(t, y):
@@ -121,7 +130,7 @@ def exponential_response(time_s, values, *, t0_s, t0_window_s=None, noise=None) 
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", OptimizeWarning)
             popt, pcov = curve_fit(model, t, y / scale, p0=p0, sigma=sigma, absolute_sigma=noise is not None,
-                                   bounds=(lo, hi), method="trf", max_nfev=4000)
+                                   bounds=(lo, hi), method="trf", max_nfev=400)
     except (RuntimeError, ValueError) as exc:
         out["fit_message"] = f"fit did not converge: {exc}".split("\n")[0]
         return out
@@ -136,13 +145,15 @@ def exponential_response(time_s, values, *, t0_s, t0_window_s=None, noise=None) 
 
 
 def series_features(time_s, values, *, perturbation_s, errors=None, m_allan=DEFAULT_ALLAN_M, settle_fraction=0.25,
-                    min_baseline_frames=5, penalty_factor=6.0, min_step_sigma=5.0) -> dict:
+                    min_baseline_frames=5, penalty_factor=6.0, min_step_sigma=5.0, dynamics=True) -> dict:
     """Drift, noise, change, onset and response features of one series (keys :data:`SERIES_KEYS` + ``adev_m*``).
 
     Non-finite values are dropped. The baseline window is ``time_s < perturbation_s``;
     the settled window the last ``settle_fraction`` (at least 5) of the frames after it.
     Features that need a missing window are NaN. Units are those of ``values``
-    (per second for slopes, seconds for times).
+    (per second for slopes, seconds for times). ``dynamics=False`` skips the
+    change-point onset and the response fit (their keys stay NaN, ``n_changepoints`` 0)
+    where only levels, noise, change and slopes are wanted.
     """
     t = np.asarray(time_s, dtype=float).ravel()
     v = np.asarray(values, dtype=float).ravel()
@@ -175,6 +186,8 @@ def series_features(time_s, values, *, perturbation_s, errors=None, m_allan=DEFA
         out["change"] = float(np.mean(vs) - np.mean(vb))
         out["change_err"] = float(math.sqrt(np.var(vb, ddof=1) / vb.size + np.var(vs, ddof=1) / vs.size))
     # slow drift must not count as a change: scale by the larger of white noise and baseline scatter
+    if not dynamics:
+        return out
     noise = float(np.nanmax([out["diff_noise"], out["baseline_noise"]]))
     t0 = float(perturbation_s)
     if np.isfinite(noise) and noise > 0 and v.size >= 8:
@@ -228,7 +241,7 @@ def track_features(tracks, *, perturbation_s, settle_fraction=0.25, min_baseline
         frames = g["frame"].to_numpy(np.int64)
         span = int(frames.max() - frames.min() + 1)
         s = series_features(t, c, perturbation_s=perturbation_s, settle_fraction=settle_fraction,
-                            min_baseline_frames=min_baseline_frames, m_allan=DEFAULT_ALLAN_M)
+                            min_baseline_frames=min_baseline_frames, m_allan=DEFAULT_ALLAN_M, dynamics=False)
         row = {"cell_id": cid, "track_id": int(tid), "mode_family": int(g["mode_family"].iloc[0]),
                "n_frames": int(g.shape[0]), "first_time_s": float(t[0]), "lifetime_s": float(t[-1] - t[0]),
                "dropout_fraction": float(1.0 - np.unique(frames).size / span),
@@ -238,7 +251,8 @@ def track_features(tracks, *, perturbation_s, settle_fraction=0.25, min_baseline
                "baseline_slope_nm_per_s": s["baseline_slope_per_s"], "slope_nm_per_s": s["slope_per_s"],
                "bleach_rate_per_s": _bleach_rate(t, g["area_counts"].to_numpy(float))}
         fw = series_features(t, g["fwhm_nm"].to_numpy(float), perturbation_s=perturbation_s,
-                             settle_fraction=settle_fraction, min_baseline_frames=min_baseline_frames, m_allan=())
+                             settle_fraction=settle_fraction, min_baseline_frames=min_baseline_frames, m_allan=(),
+                             dynamics=False)
         row["fwhm_baseline_nm"], row["fwhm_change_nm"] = fw["baseline_level"], fw["change"]
         for m in DEFAULT_ALLAN_M:
             row[f"adev_m{m}_nm"] = s[f"adev_m{m}"]
@@ -315,14 +329,15 @@ def cell_features(cell_frames, tracks=None, *, perturbation_s, pattern_tracks=No
     out = dict.fromkeys(_cell_keys(m_allan), float("nan"))
     opts = dict(perturbation_s=perturbation_s, settle_fraction=settle_fraction,
                 min_baseline_frames=min_baseline_frames)
-    for prefix, col in (("dn", "index_change"), ("rs", "relative_shift")):
-        s = series_features(t, las[col].to_numpy(float), errors=las[col + "_err"].to_numpy(float), m_allan=m_allan,
+    for prefix, col in (("dn", "index_change"), ("rs", "relative_shift"), ("pc", "pattern_baseline_corr")):
+        err = las[col + "_err"].to_numpy(float) if col + "_err" in las.columns else None
+        s = series_features(t, las[col].to_numpy(float), errors=err, m_allan=m_allan,
                             penalty_factor=penalty_factor, min_step_sigma=min_step_sigma, **opts)
         out.update({f"{prefix}_{k}": v for k, v in s.items()})
     for col, stem, unit in _CAVITY:
         if col in las.columns:
             s = series_features(t, las[col].to_numpy(float), m_allan=(), penalty_factor=penalty_factor,
-                                min_step_sigma=min_step_sigma, **opts)
+                                min_step_sigma=min_step_sigma, dynamics=False, **opts)
             out[f"{stem}_baseline{unit}"], out[f"{stem}_noise{unit}"] = s["baseline_level"], s["baseline_noise"]
             out[f"{stem}_change{unit}"], out[f"{stem}_change_err{unit}"] = s["change"], s["change_err"]
     out["dropout_fraction"] = float(1.0 - lasing.sum() / n_frames)
@@ -363,7 +378,7 @@ def cell_features(cell_frames, tracks=None, *, perturbation_s, pattern_tracks=No
         note = "no perturbation time"
     elif las.shape[0] == 0:
         note = "no lasing frames"
-    elif not np.isfinite(out["dn_change"]) and not np.isfinite(out["rs_change"]):
+    elif not any(np.isfinite(out[f"{k}_change"]) for k in ("dn", "rs", "pc")):
         note = "too few lasing frames before or after perturbation_s"
     out["features_note"] = note
     return out

@@ -17,21 +17,35 @@ __all__ = ["summarize_cell", "CHANGE_RULE"]
 _MIN_SETTLED_FRAMES = 5
 
 CHANGE_RULE = (
-    "A cell is flagged as changed when its response after the perturbation is both significant and large. "
-    "The quantity is index_change when it is finite in most lasing frames, otherwise relative_shift. "
-    "Only lasing frames with a finite value are used. The baseline window holds the frames before "
-    "perturbation_s (at least min_baseline_frames, default 5); the settled window holds the last "
-    "settle_fraction (default 25 %, at least 5 frames) of the frames at or after perturbation_s. "
-    "baseline_noise is 1.4826 times the median absolute deviation of the baseline values, never below the "
-    "median reported 1-sigma error there. The change is mean(settled) - mean(baseline), its error "
+    "A cell is judged twice: against its own baseline (self_changed, the per-cell rule) and against the "
+    "control population (changed). Per-cell rule: the quantity is index_change when it is finite in most "
+    "lasing frames, otherwise relative_shift. Only lasing frames with a finite value are used. The baseline "
+    "window holds the frames before perturbation_s (at least min_baseline_frames, default 5); the settled "
+    "window holds the last settle_fraction (default 25 %, at least 5 frames) of the frames at or after "
+    "perturbation_s. baseline_noise is 1.4826 times the median absolute deviation of the baseline values, never "
+    "below the median reported 1-sigma error there. The change is mean(settled) - mean(baseline), its error "
     "sqrt(s_b^2/n_b + s_s^2/n_s) with s the sample standard deviation of each window (floored by the median "
-    "reported error), and change_z = change / baseline_noise. The cell is changed when |change_z| >= z_min "
+    "reported error), and change_z = change / baseline_noise. The cell is self_changed when |change_z| >= z_min "
     "(default 5) and |change| >= min_index_change (default 2e-4) or, for relative_shift, min_relative_shift "
-    "(default 1.5e-4). For a changed cell the onset is the first frame at or after perturbation_s that starts a "
-    "run of n_consecutive (default 3) frames beyond baseline mean + k_sigma (default 5) baseline_noise in the "
-    "direction of the change; onset_s is half-way between that frame and the frame before it, onset_err_s half "
-    "that interval. Without a perturbation time, or with too few baseline or settled frames, the features are "
-    "NaN, changed is False and the note says why."
+    "(default 1.5e-4). A cell seen only in emission images is judged the same way on pattern_baseline_corr "
+    "(its pattern's correlation with its mean pattern before perturbation_s) with min_pattern_change (default "
+    "0.1). Against the controls: when the manifest names control conditions (experiment.control_condition) and "
+    "at least 4 control cells have a finite flag feature x (flags.feature, default index_change, the change "
+    "above), every cell gets change_score = (x - median of the controls) / s, with s the controls' 1.4826 x "
+    "median absolute deviation, widened when the cell's own error exceeds the controls' typical error (a "
+    "control is compared with the other controls); a p_value calibrated on the controls (the rank of its "
+    "deviation among theirs when (n_controls + 1) x fdr >= 5, otherwise the exact distribution of the score for "
+    "normally distributed controls, by Monte Carlo); and a Benjamini-Hochberg q_value across all scored cells. "
+    "The cell is changed when q_value <= fdr (flags.fdr, default 0.05) and |x| is at least the per-cell rule's "
+    "size threshold (min_index_change or min_relative_shift; flags.min_effect for another feature). A cell that "
+    "cannot be scored, and every cell of an experiment without controls, is changed when it is self_changed. "
+    "The onset of a changed cell is the first significant change point of its judged series at or after "
+    "perturbation_s: exact penalised change points (PELT, squared-error cost, penalty 6 sigma^2 ln n, sigma the "
+    "larger of the frame-to-frame and the baseline noise), the first whose step is at least 5 sigma and whose "
+    "level persists over the next 3 frames; onset_s is half-way between that frame and the frame before it and "
+    "onset_err_s combines the spread of the change location with the frame interval. Without a perturbation "
+    "time, or with too few baseline or settled frames, the features are NaN, the cell is not changed and the "
+    "note says why."
 )
 
 _FEATURE_KEYS = ("n_frames", "n_frames_lasing", "n_tracks", "baseline_optical_length_um", "baseline_noise",
@@ -72,7 +86,15 @@ def _check_options(**opts):
 def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_index_change=2e-4,
                    min_relative_shift=1.5e-4, k_sigma=5.0, n_consecutive=3, settle_fraction=0.25,
                    min_baseline_frames=5) -> dict:
-    """Change, significance, onset and verdict of one cell.
+    """Change, significance, onset and per-cell verdict of one cell.
+
+    ``changed`` here is the per-cell rule of :data:`CHANGE_RULE` (``self_changed``
+    in the cells table of a run, where ``changed`` also weighs the control
+    population).  The onset of a changed cell is the first frame at or after
+    ``perturbation_s`` that starts a run of ``n_consecutive`` frames beyond
+    baseline mean + ``k_sigma`` baseline_noise in the direction of the change
+    (half-way between that frame and the one before, error half that interval);
+    a run replaces it with the change-point onset of the catalogue.
 
     Parameters
     ----------
@@ -83,7 +105,7 @@ def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_in
     n_tracks : int, optional
         Mode tracks found for the cell (copied to the result).
     z_min, min_index_change, min_relative_shift, k_sigma, n_consecutive, settle_fraction, min_baseline_frames
-        Options of the verdict rule, described in :data:`CHANGE_RULE`.
+        Options of the per-cell rule (:data:`CHANGE_RULE`) and of the threshold onset (above).
 
     Returns
     -------

@@ -6,7 +6,8 @@ This subpackage knows nothing of fitting or physics.  Stacks are read lazily
 expected and what was found, and every file is written atomically.
 """
 
-from ._manifest import CellSpec, DishSpec, LampSpec, Manifest, missing_files, read_manifest
+from ._images import ImageStack, read_image_stack
+from ._manifest import CellSpec, DishSpec, FieldSpec, LampSpec, Manifest, missing_files, read_manifest
 from ._sidecar import CameraModel, Sidecar, check_sidecar, default_sidecar_path, read_sidecar
 from ._stack import FORMATS, SpectralStack, read_stack
 from ._write import atomic_path, file_sha256, read_table, write_json, write_table
@@ -16,6 +17,8 @@ __all__ = [
     "CameraModel",
     "CellSpec",
     "DishSpec",
+    "FieldSpec",
+    "ImageStack",
     "LampSpec",
     "Manifest",
     "Sidecar",
@@ -25,6 +28,7 @@ __all__ = [
     "default_sidecar_path",
     "file_sha256",
     "missing_files",
+    "read_image_stack",
     "read_manifest",
     "read_sidecar",
     "read_stack",

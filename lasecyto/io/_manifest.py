@@ -12,7 +12,7 @@ from pathlib import Path
 from ..exceptions import InputError
 from ._sidecar import default_sidecar_path
 
-__all__ = ["CellSpec", "DishSpec", "LampSpec", "Manifest", "missing_files", "read_manifest"]
+__all__ = ["CellSpec", "DishSpec", "FieldSpec", "LampSpec", "Manifest", "missing_files", "read_manifest"]
 
 RESONATORS = ("fabry-perot",)
 
@@ -36,17 +36,35 @@ class DishSpec:
 
 
 @dataclass(frozen=True)
+class FieldSpec:
+    """A camera field of view: its emission-image stack (TIFF / OME-TIFF) and optional sidecar."""
+
+    field: str
+    dish: str
+    images: Path
+    sidecar: Path | None = None
+
+
+@dataclass(frozen=True)
 class CellSpec:
-    """A cell: where its frames are and which detector rows it owns (None: all rows)."""
+    """A cell: where its frames are and which detector rows it owns (None: all rows).
+
+    ``stack`` is None for a cell seen only in emission images.  A cell in a
+    camera field names the ``field`` and either ``position_px`` (row, col) or
+    ``roi_px`` (row0, col0, row1, col1, half-open) in that field's images.
+    """
 
     cell_id: str
     dish: str
     condition: str
     perturbation_s: float
-    stack: Path
-    sidecar: Path
+    stack: Path | None
+    sidecar: Path | None
     rows: tuple[int, int] | None = None
     cell_thickness_um: float = math.nan
+    field: str | None = None
+    position_px: tuple[float, float] | None = None
+    roi_px: tuple[int, int, int, int] | None = None
 
 
 @dataclass(frozen=True)
@@ -66,6 +84,9 @@ class Manifest:
     parameters: dict = field(default_factory=dict)
     medium: str = ""
     cell_thickness_um: float = math.nan
+    fields: dict = field(default_factory=dict)
+    control_conditions: tuple = ()
+    classifier_model: Path | None = None
 
 
 def _join(root, relative):
@@ -140,6 +161,46 @@ def _rows(value, problems, where):
                      _show(value))
         return None
     return (int(value[0]), int(value[1]))
+
+
+def _position(value, problems, where):
+    ok = (isinstance(value, list) and len(value) == 2
+          and all(isinstance(v, numbers.Real) and not isinstance(v, bool) and math.isfinite(v) and v >= 0
+                  for v in value))
+    if not ok:
+        problems.add(where, "bad image position", "[row, col] pixel coordinates >= 0", _show(value))
+        return None
+    return (float(value[0]), float(value[1]))
+
+
+def _roi(value, problems, where):
+    ok = (isinstance(value, list) and len(value) == 4
+          and all(isinstance(v, int) and not isinstance(v, bool) for v in value)
+          and 0 <= value[0] < value[2] and 0 <= value[1] < value[3])
+    if not ok:
+        problems.add(where, "bad region of interest",
+                     "[row0, col0, row1, col1] integers with 0 <= row0 < row1 and 0 <= col0 < col1", _show(value))
+        return None
+    return tuple(int(v) for v in value)
+
+
+def _controls(exp, conditions, problems):
+    """The control conditions named by ``experiment.control_condition`` (a string or a list of strings)."""
+    if "control_condition" not in exp:
+        return ()
+    v = exp["control_condition"]
+    names = [v] if isinstance(v, str) else v
+    if not (isinstance(names, list) and names and all(isinstance(n, str) and n.strip() for n in names)):
+        problems.add("experiment.control_condition", "bad control condition",
+                     "a condition name or a list of them", _show(v))
+        return ()
+    unknown = [n for n in names if n not in conditions]
+    if unknown:
+        problems.add("experiment.control_condition", "not the condition of any dish",
+                     f"one of {sorted(conditions)}" if conditions else "a condition of a [[dishes]] entry",
+                     _show(unknown[0] if len(unknown) == 1 else unknown))
+        return ()
+    return tuple(dict.fromkeys(names))
 
 
 def read_manifest(path) -> Manifest:
@@ -230,6 +291,28 @@ def read_manifest(path) -> Manifest:
         else:
             dishes[dish] = None  # known name, problem already recorded
 
+    fields = {}
+    for i, f in enumerate(_array_of_tables(doc, "fields", p)):
+        where = f"fields[{i}]"
+        name = p.text(f, "field", where)
+        dish = p.text(f, "dish", where)
+        images = p.text(f, "images", where)
+        sidecar = p.text(f, "sidecar", where, required=False)
+        if name is None:
+            continue
+        if name in fields:
+            p.add(f"{where}.field", "repeated field", "unique field names", _show(name))
+            continue
+        if dish is not None and dish not in dishes:
+            p.add(f"{where}.dish", "unknown dish", f"one of {sorted(dishes)}" if dishes else "a [[dishes]] entry",
+                  _show(dish))
+            dish = None
+        if None in (dish, images) or ("sidecar" in f and sidecar is None):
+            fields[name] = None  # known name, problem already recorded
+            continue
+        fields[name] = FieldSpec(field=name, dish=dish, images=_join(root, images),
+                                 sidecar=_join(root, sidecar) if sidecar else None)
+
     cells, seen = [], set()
     cell_docs = _array_of_tables(doc, "cells", p)
     if doc.get("cells", []) == []:
@@ -238,12 +321,37 @@ def read_manifest(path) -> Manifest:
         where = f"cells[{i}]"
         cell_id = p.text(c, "cell_id", where)
         dish = p.text(c, "dish", where)
-        stack = p.text(c, "stack", where)
+        field_name = p.text(c, "field", where, required=False)
+        stack = p.text(c, "stack", where, required="field" not in c)
         sidecar = p.text(c, "sidecar", where, required=False)
         bad_sidecar = "sidecar" in c and sidecar is None
         rows = _rows(c["rows"], p, f"{where}.rows") if "rows" in c else None
         cell_t = p.number(c, "cell_thickness_um", where, positive=True) if "cell_thickness_um" in c else thickness
         _thickness_fits(cell_t, f"{where}.cell_thickness_um")
+        bad_image = ("field" in c and field_name is None)
+        position = _position(c["position_px"], p, f"{where}.position_px") if "position_px" in c else None
+        roi = _roi(c["roi_px"], p, f"{where}.roi_px") if "roi_px" in c else None
+        bad_image |= ("position_px" in c and position is None) or ("roi_px" in c and roi is None)
+        if field_name is not None:
+            if field_name not in fields:
+                p.add(f"{where}.field", "unknown field",
+                      f"one of {sorted(fields)}" if fields else "a [[fields]] entry", _show(field_name))
+                bad_image = True
+            elif fields[field_name] is not None and dish is not None and fields[field_name].dish != dish:
+                p.add(f"{where}.field", "field of another dish", f"a field of dish {dish!r}",
+                      f"{field_name!r} of dish {fields[field_name].dish!r}")
+                bad_image = True
+            if "position_px" in c and "roi_px" in c:
+                p.add(where, "both a position and a region of interest", "position_px or roi_px", "both")
+                bad_image = True
+            elif "position_px" not in c and "roi_px" not in c:
+                p.add(where, "cell in a camera field without a location",
+                      "position_px = [row, col] or roi_px = [row0, col0, row1, col1]", "neither")
+                bad_image = True
+        elif "position_px" in c or "roi_px" in c:
+            p.add(f"{where}.field", "image location without a field", "the [[fields]] entry it refers to",
+                  "absent")
+            bad_image = True
         if cell_id is not None:
             if cell_id in seen:
                 p.add(f"{where}.cell_id", "repeated cell_id", "unique cell ids", _show(cell_id))
@@ -254,35 +362,59 @@ def read_manifest(path) -> Manifest:
             p.add(f"{where}.dish", "unknown dish", f"one of {sorted(dishes)}" if dishes else "a [[dishes]] entry",
                   _show(dish))
             dish = None
-        if None in (cell_id, dish, stack) or bad_sidecar or ("rows" in c and rows is None):
+        if "rows" in c and "stack" not in c:
+            p.add(f"{where}.rows", "detector rows without a spectral stack", "a stack", "absent")
+            continue
+        if None in (cell_id, dish) or (stack is None and field_name is None) or bad_sidecar or bad_image \
+                or ("rows" in c and rows is None) or ("stack" in c and stack is None):
             continue
         spec = dishes[dish]
-        if spec is None:
+        if spec is None or (field_name is not None and fields.get(field_name) is None):
             continue
-        stack_path = _join(root, stack)
+        stack_path = _join(root, stack) if stack is not None else None
+        if sidecar:
+            sidecar_path = _join(root, sidecar)
+        else:
+            sidecar_path = default_sidecar_path(stack_path) if stack_path is not None else None
         cells.append(CellSpec(cell_id=cell_id, dish=dish, condition=spec.condition,
-                              perturbation_s=spec.perturbation_s, stack=stack_path,
-                              sidecar=_join(root, sidecar) if sidecar else default_sidecar_path(stack_path),
-                              rows=rows, cell_thickness_um=cell_t))
+                              perturbation_s=spec.perturbation_s, stack=stack_path, sidecar=sidecar_path,
+                              rows=rows, cell_thickness_um=cell_t, field=field_name, position_px=position,
+                              roi_px=roi))
+    conditions = {d.condition for d in dishes.values() if d is not None}
+    controls = _controls(exp, conditions, p)
+    model = None
+    if "classifier_model" in exp:
+        text = p.text(exp, "classifier_model", "experiment")
+        model = _join(root, text) if text else None
     if p.items:
         n = len(p.items)
         raise InputError(f"{n} problem{'s' if n > 1 else ''} in the manifest: " + "; ".join(p.items), path=path)
     return Manifest(path=path, root=root, name=name, resonator=resonator, gap_um=gap_um, synthetic=synthetic,
                     description=description, lamp=lamp, dishes=dishes, cells=tuple(cells),
-                    parameters=parameters, medium=medium, cell_thickness_um=thickness)
+                    parameters=parameters, medium=medium, cell_thickness_um=thickness,
+                    fields={k: v for k, v in fields.items() if v is not None},
+                    control_conditions=controls, classifier_model=model)
 
 
 def missing_files(manifest: Manifest) -> list[tuple[str, Path]]:
     """``(owner, path)`` for every stack or sidecar of the manifest that does not exist.
 
     The owner is ``"lamp"`` or the cell id; the lamp comes first, then the
-    cells in manifest order, each stack before its sidecar.
+    cells in manifest order, each stack before its sidecar.  For a cell seen
+    only in emission images, its field's image stack (and a sidecar named in
+    the manifest) count as its stack; the images of a cell that also has a
+    spectral stack are checked by the pattern stage, which reports a problem
+    without losing the spectra.
     """
     out = []
     items = ([("lamp", manifest.lamp)] if manifest.lamp is not None else [])
     items += [(c.cell_id, c) for c in manifest.cells]
     for owner, spec in items:
-        for p in (spec.stack, spec.sidecar):
-            if not p.exists():
+        paths = (spec.stack, spec.sidecar)
+        if getattr(spec, "stack", None) is None:
+            f = manifest.fields[spec.field]
+            paths = (f.images, f.sidecar)
+        for p in paths:
+            if p is not None and not p.exists():
                 out.append((owner, p))
     return out

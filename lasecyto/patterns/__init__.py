@@ -19,12 +19,13 @@ link_regions            the same on flat arrays
 match_tracks_to_cells   give tracks the manifest cell (position or ROI) they belong to
 pattern_correlation     correlation of two aligned patterns
 decorrelation_time      lag at which the mean correlation falls to 1/e
+reference_correlation   correlation of each pattern with the mean pattern of reference frames
 hg_intensity, lg_intensity, mode_intensity   normalised HG_mn and LG_pl intensities
 """
 
 from ._analyze import REGION_COLUMNS, PatternAnalysis, analyze_patterns, pattern_track_features, patterns_table
 from ._background import Background, estimate_background, saturation_mask
-from ._change import aligned_patch, decorrelation_time, pattern_correlation
+from ._change import aligned_patch, decorrelation_time, pattern_correlation, reference_correlation
 from ._describe import ModeFit, count_lobes, extract_patch, fit_mode, moment_descriptors, radial_profile
 from ._modes import MODE_ORDERS, hg_intensity, lg_intensity, mode_intensity, order_symmetry_deg, parse_order
 from ._segment import Segmentation, segment_frame
@@ -53,6 +54,7 @@ __all__ = [
     "match_tracks_to_cells",
     "pattern_correlation",
     "decorrelation_time",
+    "reference_correlation",
     "MODE_ORDERS",
     "hg_intensity",
     "lg_intensity",

@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 
 from ..exceptions import InputError
+from ..tables import SCHEMAS
 from ._background import estimate_background, saturation_mask
 from ._change import aligned_patch, decorrelation_time, pattern_correlation
 from ._describe import count_lobes, extract_patch, fit_mode, moment_descriptors, radial_profile
@@ -19,44 +20,9 @@ from ._track import RegionLinker
 __all__ = ["PatternAnalysis", "analyze_patterns", "patterns_table", "pattern_track_features",
            "REGION_COLUMNS"]
 
-#: Columns of the per-region-per-frame table, with their meaning.
-REGION_COLUMNS = {
-    "frame": "frame index, from 0",
-    "time_s": "frame time",
-    "track_id": "region track (cell identity within the stack), from 0",
-    "region": "region label within the frame, from 1",
-    "centroid_row_px": "background-subtracted intensity centroid, row",
-    "centroid_col_px": "background-subtracted intensity centroid, column",
-    "area_px": "region area",
-    "area_um2": "region area (NaN without a pixel size)",
-    "peak_counts": "brightest pixel above background",
-    "total_counts": "summed signal above background",
-    "n_saturated_px": "saturated pixels in the region",
-    "saturated": "the region holds a saturated pixel",
-    "background_counts": "background level at the centroid",
-    "noise_counts": "background noise (robust standard deviation) of the frame",
-    "center_row_px": "fitted mode centre, row",
-    "center_col_px": "fitted mode centre, column",
-    "waist_px": "fitted beam radius w of the best order",
-    "waist_um": "fitted beam radius (NaN without a pixel size)",
-    "orientation_deg": "turn of the HG axes from +col towards +row (NaN for round orders)",
-    "mode_order": "best order, 'HGmn' or 'LGpl'",
-    "mode_status": "ok, mixed, irregular or failed",
-    "mode_confidence": "1 - RSS_best / RSS_second",
-    "mode_explained": "fraction of the region's variance explained by the best order",
-    "mode_second_order": "second-best order",
-    "mode_mixture_explained": "fraction explained by the best two-order mixture",
-    "sigma_major_px": "square root of the major second moment",
-    "sigma_minor_px": "square root of the minor second moment",
-    "moment_orientation_deg": "major axis from +col towards +row",
-    "eccentricity": "sqrt(1 - minor/major) of the second moments",
-    "n_lobes": "bright lobes (a ring counts as one)",
-    "ring_radius_px": "radius of the azimuthal-mean maximum around the fitted centre",
-    "pattern_corr": "correlation with the track's previous pattern (aligned, NaN at its first frame)",
-    "pattern_change": "pattern_corr below the change threshold",
-    "fit_ok": "the mode fit succeeded",
-    "fit_message": "empty when fit_ok, else the reason",
-}
+#: Columns of the per-region-per-frame table, with their meaning (the ``patterns`` schema of
+#: :mod:`lasecyto.tables` without its ``cell_id``, which a run adds).
+REGION_COLUMNS = {c.name: c.description for c in SCHEMAS["patterns"] if c.name != "cell_id"}
 
 _TRACK_COLUMNS = ["track_id", "n_frames", "first_frame", "last_frame", "row_px", "col_px", "dominant_order",
                   "dominant_fraction", "n_pattern_changes", "mean_pattern_corr", "decorrelation_time_s",
@@ -72,7 +38,10 @@ class PatternAnalysis:
     noise_counts, threshold_counts, n_regions, n_saturated_px, message``);
     ``tracks``: one row per track; ``lag_correlation``: mean aligned
     correlation per track and lag (``track_id, lag_frames, lag_s, corr, n``);
-    ``reason`` is empty unless no region was found at all, then it says why.
+    ``reason`` is empty unless no region was found at all, then it says why;
+    ``patches`` (only with ``keep_patches=True``) holds, for every row of
+    ``regions``, the region's pattern resampled on a square grid centred on its
+    fitted centre (the aligned patch its correlations are computed on).
     """
 
     regions: pd.DataFrame
@@ -80,6 +49,7 @@ class PatternAnalysis:
     tracks: pd.DataFrame
     lag_correlation: pd.DataFrame
     reason: str
+    patches: list | None = None
 
 
 def _check_stack(stack):
@@ -104,7 +74,7 @@ def _check_stack(stack):
 def analyze_patterns(stack, *, frame_times_s=None, frame_interval_s=None, pixel_size_um=None, block_frames=32,
                      spot_radius_px=10.0, threshold_sigma=5.0, min_area_px=12, saturation_counts=None,
                      tile_px=None, orders=MODE_ORDERS, min_explained=0.9, max_displacement_px=6.0,
-                     max_gap_frames=3, change_corr=0.9, max_lag_frames=20, progress=None):
+                     max_gap_frames=3, change_corr=0.9, max_lag_frames=20, keep_patches=False, progress=None):
     """Segment, track and describe the lasing regions of an image stack, streaming it in blocks.
 
     Parameters
@@ -132,6 +102,9 @@ def analyze_patterns(stack, *, frame_times_s=None, frame_interval_s=None, pixel_
         track's previous pattern falls below this value.
     max_lag_frames : int
         Longest lag of the per-track correlation used for the decorrelation time.
+    keep_patches : bool
+        Return every region's aligned patch in ``PatternAnalysis.patches`` (memory
+        grows with the number of regions; for per-cell analyses of modest length).
     progress : callable, optional
         Called as ``progress(frames_done, n_frames)`` after each block.
 
@@ -158,6 +131,7 @@ def analyze_patterns(stack, *, frame_times_s=None, frame_interval_s=None, pixel_
     history = {}  # track_id -> deque of (frame, aligned normalised patch)
     lag_sum, lag_n = {}, {}
     rows, frame_rows = [], []
+    kept = [] if keep_patches else None
     block = max(int(block_frames), 1)
     for start in range(0, n_frames, block):
         raw = np.asarray(stack[start:min(start + block, n_frames)])
@@ -221,6 +195,8 @@ def analyze_patterns(stack, *, frame_times_s=None, frame_interval_s=None, pixel_
                 if hist:
                     corr = pattern_correlation(hist[-1][1], aligned)
                 hist.append((f, aligned))
+                if kept is not None:
+                    kept.append(aligned)
                 bgc = float(level) if np.ndim(level) == 0 else float(
                     level[int(np.clip(round(cen[0]), 0, n_rows - 1)), int(np.clip(round(cen[1]), 0, n_cols - 1))])
                 rows.append((
@@ -256,7 +232,8 @@ def analyze_patterns(stack, *, frame_times_s=None, frame_interval_s=None, pixel_
         msgs = frames["message"][frames["message"] != ""]
         common = msgs.value_counts().index[0] if len(msgs) else "no region"
         reason = f"no lasing cell in any of the {n_frames} frames (most frames: {common})"
-    return PatternAnalysis(regions=regions, frames=frames, tracks=tracks, lag_correlation=lagc, reason=reason)
+    return PatternAnalysis(regions=regions, frames=frames, tracks=tracks, lag_correlation=lagc, reason=reason,
+                           patches=kept)
 
 
 def pattern_track_features(regions, lag_correlation):

@@ -7,7 +7,9 @@ import math
 import numpy as np
 from scipy import ndimage
 
-__all__ = ["aligned_patch", "pattern_correlation", "decorrelation_time"]
+from ..exceptions import InputError
+
+__all__ = ["aligned_patch", "pattern_correlation", "decorrelation_time", "reference_correlation"]
 
 
 def aligned_patch(image, center_rc, half_px):
@@ -62,3 +64,64 @@ def decorrelation_time(lag_s, corr):
     k = int(below[0])
     x0, x1, y0, y1 = lag_s[k - 1], lag_s[k], corr[k - 1], corr[k]
     return float(x0 + (y0 - level) * (x1 - x0) / (y0 - y1)) if y0 != y1 else float(x1), ""
+
+
+def _standardise(patch):
+    """Patch minus its mean over finite pixels, divided by their standard deviation (NaN kept)."""
+    p = np.asarray(patch, dtype=float)
+    ok = np.isfinite(p)
+    if ok.sum() < 3:
+        return np.full(p.shape, np.nan)
+    v = p[ok]
+    sd = float(v.std())
+    if not sd > 0:
+        return np.full(p.shape, np.nan)
+    return (p - v.mean()) / sd
+
+
+def reference_correlation(patches, reference):
+    """Correlation of each aligned pattern with the mean standardised pattern of the reference frames.
+
+    Each patch is standardised (zero mean, unit variance over its finite
+    pixels) and the template is the pixel-wise mean of the reference patches;
+    a reference patch is compared with the mean of the *other* reference patches
+    (leave one out), so reference and later frames are scored alike.
+
+    Parameters
+    ----------
+    patches : sequence of 2-D arrays of one shape
+        Aligned patterns of one cell (e.g. ``PatternAnalysis.patches``).
+    reference : array of bool
+        Which patches form the template (e.g. frames before the perturbation).
+
+    Returns
+    -------
+    numpy.ndarray
+        One correlation per patch; all NaN when fewer than two reference patches
+        are usable.
+    """
+    ref = np.asarray(reference, dtype=bool).ravel()
+    if ref.size != len(patches):
+        raise InputError("reference mask does not match the patches", field="reference",
+                         expected=f"{len(patches)} booleans", found=f"{ref.size}")
+    out = np.full(len(patches), np.nan)
+    if not len(patches):
+        return out
+    z = np.stack([_standardise(p) for p in patches])
+    usable = ref & np.isfinite(z).any(axis=(1, 2))
+    if usable.sum() < 2:
+        return out
+    zr = z[usable]
+    total = np.nansum(zr, axis=0)
+    count = np.isfinite(zr).sum(axis=0)
+    for i in range(len(patches)):
+        if usable[i]:
+            zi = np.nan_to_num(z[i], nan=0.0)
+            n = count - np.isfinite(z[i])
+            with np.errstate(invalid="ignore", divide="ignore"):
+                tmpl = np.where(n > 0, (total - zi) / n, np.nan)
+        else:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                tmpl = np.where(count > 0, total / count, np.nan)
+        out[i] = pattern_correlation(tmpl, z[i])
+    return out

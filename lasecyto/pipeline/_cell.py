@@ -20,7 +20,9 @@ from ..cavity import cell_frames
 from ..exceptions import InputError, LasecytoError
 from ..features import summarize_cell
 from ..io import check_sidecar, read_sidecar, read_stack
+from ._experiment import complete_cell
 from ._lines_stage import stack_lines
+from ._patterns import run_pattern_cell
 from ._track_stage import track_cell
 
 __all__ = ["CellJob", "CellResult", "process_cell"]
@@ -36,8 +38,8 @@ class CellJob:
     dish: str
     condition: str
     perturbation_s: float
-    stack: str
-    sidecar: str
+    stack: str | None
+    sidecar: str | None
     rows: tuple | None
     gap_um: float
     parameters: dict
@@ -46,6 +48,13 @@ class CellJob:
     resonator: str = "fabry-perot"
     medium: str = ""                      # gap medium (lasecyto.cavity.media name), "" when not given
     cell_thickness_um: float = math.nan   # thickness of the cell in the gap, NaN: fills the gap
+    # emission images (pipeline._patterns.image_job_fields); stack is None for an image-only cell
+    images: str | None = None
+    images_sidecar: str | None = None
+    image_field: str | None = None
+    position_px: tuple | None = None
+    roi_px: tuple | None = None
+    field_cells: tuple = ()
 
 
 @dataclass
@@ -146,7 +155,8 @@ def process_cell(job: CellJob) -> CellResult:
     """Process one cell; a failure is returned as a result, never raised."""
     t0 = time.perf_counter()
     try:
-        result = PROCESSORS[job.resonator](job)
+        result = PROCESSORS[job.resonator](job) if job.stack is not None else run_pattern_cell(job)
+        result = complete_cell(job, result)
     except LasecytoError as exc:
         result = CellResult(job.cell_id, "failed", error=str(exc))
     except Exception as exc:  # an unexpected failure must not stop the batch

@@ -51,9 +51,44 @@ DEFAULT_PARAMETERS: dict[str, dict] = {
         "z_min": 5.0,
         "min_index_change": 2e-4,
         "min_relative_shift": 1.5e-4,
+        "min_pattern_change": 0.1,  # image-only cells: drop of the correlation with the baseline pattern
         "k_sigma": 5.0,
         "n_consecutive": 3,
         "settle_fraction": 0.25,
+    },
+    "patterns": {
+        "spot_radius_px": 10.0,   # typical radius of one cell's emission pattern in the images
+        "threshold_sigma": 5.0,   # region detection threshold (background noise units)
+        "min_area_px": 12,
+        "min_explained": 0.9,     # an order must explain this fraction of the pattern ("ok")
+        "max_displacement_px": 6.0,  # region linking gate per frame
+        "max_gap_frames": 3,
+        "change_corr": 0.9,       # pattern change event: correlation with the previous pattern below this
+        "max_lag_frames": 20,     # longest lag for the decorrelation time
+        "window_px": 32,          # half-size of the image window analysed around a cell's position
+        "match_distance_px": 12.0,  # a region track belongs to the nearest cell position within this
+        "block_frames": 32,       # image frames read at once
+    },
+    "features": {
+        "min_frames": 10,         # fewer frames: no feature catalogue for the cell (a note says why)
+        "penalty_factor": 6.0,    # change points: penalty = factor x noise^2 x ln(n)
+        "min_step_sigma": 5.0,    # an onset change point must step by this many noise units
+    },
+    "flags": {
+        "feature": "index_change",  # cells column scored against the control population
+        "fdr": 0.05,              # Benjamini-Hochberg false discovery rate
+        "method": "auto",         # p-values: "auto", "permutation" or "gaussian"
+        "min_effect": 0.0,        # smallest |feature| flagged, for a feature other than index_change
+        "n_draws": 20000,         # Monte Carlo draws of the gaussian reference
+        "seed": 0,
+    },
+    "classify": {
+        "label": "condition",     # cells column learned with grouped cross-validation ("" = none)
+        "estimator": "logistic",  # "logistic" or "forest"
+        "features": "response",   # "response" (RESPONSE_FEATURE_KEYS) or "all" catalogue features
+        "n_splits": 5,            # folds (at most the number of dishes)
+        "seed": 0,
+        "anomaly": False,         # isolation-forest anomaly score against the controls
     },
 }
 

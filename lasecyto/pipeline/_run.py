@@ -21,6 +21,8 @@ from ..calibration import reference_lines, solve_dispersion
 from ..exceptions import InputError, LasecytoError
 from ..io import file_sha256, missing_files, read_manifest, read_sidecar, read_stack, write_json, write_table
 from ._cell import CellJob, CellResult, process_cell
+from ._experiment import finish_experiment
+from ._patterns import image_job_fields
 from ._params import load_recipe, resolve_parameters
 
 __all__ = ["RunResult", "run_experiment", "calibrate_lamp"]
@@ -90,8 +92,15 @@ def _hashes(manifest):
         paths["lamp.stack"] = manifest.lamp.stack
         paths["lamp.sidecar"] = manifest.lamp.sidecar
     for c in manifest.cells:
-        paths[f"{c.cell_id}.stack"] = c.stack
-        paths[f"{c.cell_id}.sidecar"] = c.sidecar
+        if c.stack is not None:
+            paths[f"{c.cell_id}.stack"] = c.stack
+            paths[f"{c.cell_id}.sidecar"] = c.sidecar
+    if manifest.classifier_model is not None:
+        paths["classifier_model"] = manifest.classifier_model
+    for f in manifest.fields.values():
+        paths[f"{f.field}.images"] = f.images
+        if f.sidecar is not None:
+            paths[f"{f.field}.sidecar"] = f.sidecar
     out, seen = {}, {}
     for key, path in paths.items():
         path = Path(path)
@@ -193,11 +202,11 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
             items.append({"item": c.cell_id, "status": "failed", "error": str(err), "seconds": None})
             continue
         jobs.append(CellJob(cell_id=c.cell_id, dish=c.dish, condition=c.condition,
-                            perturbation_s=float(c.perturbation_s), stack=str(c.stack),
-                            sidecar=str(c.sidecar), rows=c.rows, gap_um=float(manifest.gap_um),
+                            perturbation_s=float(c.perturbation_s), stack=c.stack and str(c.stack),
+                            sidecar=c.sidecar and str(c.sidecar), rows=c.rows, gap_um=float(manifest.gap_um),
                             parameters=params, lamp_axis=lamp_axis, lamp_error=lamp_error,
                             resonator=manifest.resonator, medium=manifest.medium,
-                            cell_thickness_um=float(c.cell_thickness_um)))
+                            cell_thickness_um=float(c.cell_thickness_um), **image_job_fields(manifest, c)))
 
     bar = None
     if show_progress is None:
@@ -226,6 +235,7 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
     names = list(dict.fromkeys(["lines", "tracks", "cell_frames"] + names))
     out_tables = {name: _concat([r.tables.get(name) for r in results], name) for name in names}
     out_tables["cells"] = _cells_table(results, manifest)
+    out_tables, analysis = finish_experiment(out_tables, manifest=manifest, parameters=params)
     for name, table in out_tables.items():
         write_table(table, out_dir / "tables" / name, name=name)
 
@@ -248,6 +258,7 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         "seeds": {"pipeline": "none: every stage is deterministic"},
         "workers": workers,
         "calibration": calib_summary,
+        "analysis": analysis,
         "inputs": _hashes(manifest),
         "items": items,
         "n_failed": sum(1 for it in items if it["status"] != "ok"),

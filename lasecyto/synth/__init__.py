@@ -5,7 +5,8 @@ dispersion of Daimon & Masumura 2007, Ciddor 1996 standard air, exact Fabry-Pero
 resonances, pixel-integrated line shapes, camera noise) and imports none of the
 analysis subpackages it is used to test.
 
-write_fp_experiment   a whole experiment: manifest, stacks, sidecars, lamp and truth/
+write_fp_experiment   a whole experiment: manifest, stacks, sidecars, lamp, camera images and truth/
+write_pattern_experiment  an image-only experiment (emission-pattern stacks, no spectra) and truth/
 render_lamp_frame     one neon (or any line-lamp) frame through a known wavelength axis
 neon_lines_air_nm     Ne I air wavelengths 530-725 nm (NIST ASD)
 neon_relative_intensities  their NIST relative intensities
@@ -14,7 +15,7 @@ mode_trajectories     a drifting mode comb with crossings, dropouts, hops and tr
 water_index_daimon    refractive index of water at 20 degC
 """
 
-from ._experiment import write_fp_experiment
+from ._experiment import write_fp_experiment, write_pattern_experiment
 from ._media import water_index_daimon
 from ._modes import fp_mode_wavelengths
 from ._neon import neon_lines_air_nm, neon_relative_intensities
@@ -23,6 +24,7 @@ from ._trajectories import TRAJECTORY_SCENARIO, mode_trajectories
 
 __all__ = [
     "write_fp_experiment",
+    "write_pattern_experiment",
     "render_lamp_frame",
     "neon_lines_air_nm",
     "neon_relative_intensities",

@@ -13,6 +13,7 @@ Coordinates: ``x`` runs along image columns, ``y`` along rows (downwards);
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 from pathlib import Path
@@ -28,6 +29,7 @@ __all__ = [
     "iter_pattern_frames",
     "simulate_pattern_stack",
     "write_pattern_stack",
+    "write_image_stack",
 ]
 
 #: Transverse orders the generator draws from (distinct intensity patterns; HG_nm is HG_mn turned 90 deg).
@@ -90,6 +92,7 @@ def mode_intensity(order, x, y, *, waist_px, orientation_deg=0.0):
     raise ValueError(f"unknown mode order {order!r}: expected 'HGmn' or 'LGpl'")
 
 
+@functools.lru_cache(maxsize=4096)
 def _peak(order, waist_px):
     g = np.linspace(-3.5 * waist_px, 3.5 * waist_px, 281)
     xx, yy = np.meshgrid(g, g)
@@ -277,8 +280,6 @@ def write_pattern_stack(path, *, n_frames=40, shape=(128, 128), pixel_size_um=0.
     pandas.DataFrame
         The truth table (see :func:`pattern_truth`).
     """
-    import tifffile
-
     path = Path(path)
     rng = np.random.default_rng(rng)
     camera = dict(camera or {})
@@ -288,6 +289,23 @@ def write_pattern_stack(path, *, n_frames=40, shape=(128, 128), pixel_size_um=0.
     truth = pattern_truth(n_frames=n_frames, shape=shape, frame_interval_s=frame_interval_s, rng=rng,
                           **truth_options)
     frames = iter_pattern_frames(truth, shape=shape, rng=rng, **camera)
+    write_image_stack(path, frames, n_frames=n_frames, shape=shape, frame_interval_s=frame_interval_s,
+                      pixel_size_um=pixel_size_um, ome=ome)
+    if sidecar:
+        doc = {"frame_times_s": [float(t) for t in np.arange(n_frames) * frame_interval_s],
+               "pixel_size_um": float(pixel_size_um)}
+        path.with_suffix(".json").write_text(json.dumps(doc), encoding="utf-8")
+    truth.to_csv(path.with_suffix(".truth.csv"), index=False)
+    return truth
+
+
+def write_image_stack(path, frames, *, n_frames, shape, frame_interval_s, pixel_size_um, ome=True):
+    """Write uint16 frames (an iterable, consumed one at a time) as an uncompressed, contiguous (OME-)TIFF.
+
+    OME metadata carry ``TimeIncrement`` (s) and ``PhysicalSizeX/Y`` (um).
+    """
+    import tifffile
+
     if ome:
         meta = {"axes": "TYX", "TimeIncrement": float(frame_interval_s), "TimeIncrementUnit": "s",
                 "PhysicalSizeX": float(pixel_size_um), "PhysicalSizeXUnit": "\u00b5m",
@@ -296,9 +314,3 @@ def write_pattern_stack(path, *, n_frames=40, shape=(128, 128), pixel_size_um=0.
         meta = {"axes": "TYX"}
     with tifffile.TiffWriter(path, ome=ome, bigtiff=n_frames * shape[0] * shape[1] * 2 > 2 ** 31) as tw:
         tw.write(frames, shape=(n_frames, *shape), dtype=np.uint16, metadata=meta, contiguous=True)
-    if sidecar:
-        doc = {"frame_times_s": [float(t) for t in np.arange(n_frames) * frame_interval_s],
-               "pixel_size_um": float(pixel_size_um)}
-        path.with_suffix(".json").write_text(json.dumps(doc), encoding="utf-8")
-    truth.to_csv(path.with_suffix(".truth.csv"), index=False)
-    return truth

@@ -11,12 +11,14 @@ arrays and truth columns only; :mod:`._experiment` writes the files.
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 from scipy.special import erf
 
 from ..exceptions import InputError
 from ._media import _air_to_vacuum_nm, _vacuum_to_air_nm, _water_group_index, water_index_daimon
 from ._modes import _mode_roots, fp_mode_wavelengths
 from ._neon import neon_lines_air_nm, neon_relative_intensities
+from ._patterns import PATTERN_ORDERS, iter_pattern_frames
 from ._render import (
     _detector_counts,
     _eval_polynomial,
@@ -65,6 +67,26 @@ SCENARIO = {
     "pump_energy_nj": 12.0,
     "band_rows": 8,                   # imaging spectrometer: rows per cell
     "band_gap_rows": 4,               # rows between bands and at both edges
+}
+
+# Camera images of the emission patterns: one stack per dish, cells on a grid (one pump pulse per frame
+# and cell, the same pulse as the cell's spectrum, so pump dropouts are dark in both).
+IMAGES = {
+    "grid_spacing_px": 48,            # cells sit on a grid of this pitch ...
+    "grid_columns": 3,
+    "margin_px": 32,                  # ... this far from the field's edges
+    "position_jitter_px": 3.0,        # uniform offset of each cell from its grid node
+    "pixel_size_um": 0.5,
+    "waist_px": (4.0, 5.5),
+    "peak_snr": 30.0,                 # peak signal over noise of a fresh, fully pumped pattern
+    "pattern_change_fraction": 0.6,   # responders whose transverse order changes after their onset ...
+    "pattern_change_delay_s": (30.0, 90.0),  # ... this long after it
+    "drift_px_per_frame": (0.02, -0.015),    # common stage drift (rows, cols), back and forth ...
+    "max_drift_px": 3.0,              # ... within this amplitude
+    "jitter_px": 0.03,                # per-cell wander per frame, pulled back by
+    "restoring": 0.05,                # this fraction of the offset each frame
+    "rotation_deg_per_frame": 0.1,    # slow turn of the HG axes
+    "background_e": 20.0,
 }
 
 LAMP = {
@@ -261,8 +283,118 @@ def _simulate_lamp(rng):
     return {"stack": stack, "lines_air_nm": lines, "line_photons": photons, "guess": guess}
 
 
+def _field_grid(n_cells):
+    """Grid nodes (row, col) of a field of ``n_cells`` and the field's shape."""
+    im = IMAGES
+    n_cols = min(n_cells, im["grid_columns"])
+    n_rows = -(-n_cells // n_cols)
+    k = np.arange(n_cells)
+    nodes = np.column_stack([im["margin_px"] + (k // n_cols) * im["grid_spacing_px"],
+                             im["margin_px"] + (k % n_cols) * im["grid_spacing_px"]]).astype(float)
+    shape = (2 * im["margin_px"] + (n_rows - 1) * im["grid_spacing_px"],
+             2 * im["margin_px"] + (n_cols - 1) * im["grid_spacing_px"])
+    return nodes, shape
+
+
+def _triangle_wave(x, amplitude):
+    """Triangle wave of slope 1 through 0 bounded by +-amplitude (a drift that goes back and forth)."""
+    a = float(amplitude)
+    return a - np.abs(np.mod(np.asarray(x, dtype=float) + a, 4 * a) - 2 * a)
+
+
+def _simulate_field(dcells, times_s, truth_frames, rng, *, change_fraction=None):
+    """Emission-pattern camera stack (T, rows, cols) of one dish and its truth rows.
+
+    ``truth_frames`` maps each cell id to its per-frame ``dropout`` and ``pump_factor``;
+    a responder switches order with probability ``change_fraction`` (default
+    ``IMAGES["pattern_change_fraction"]``).
+    """
+    im, det = IMAGES, DETECTOR
+    n_frames, n = times_s.size, len(dcells)
+    nodes, shape = _field_grid(n)
+    start = nodes + rng.uniform(-im["position_jitter_px"], im["position_jitter_px"], nodes.shape)
+    waists = rng.uniform(*im["waist_px"], n)
+    angles = rng.uniform(0.0, 180.0, n)
+    orders = [PATTERN_ORDERS[int(i)] for i in rng.integers(len(PATTERN_ORDERS), size=n)]
+    later, change_s = [], []
+    for cell, first in zip(dcells, orders):
+        fraction = im["pattern_change_fraction"] if change_fraction is None else change_fraction
+        changes = cell["responder"] and rng.random() < fraction
+        other = [o for o in PATTERN_ORDERS if o != first]
+        later.append(other[int(rng.integers(len(other)))] if changes else first)
+        change_s.append(cell["onset_s"] + rng.uniform(*im["pattern_change_delay_s"]) if changes else np.nan)
+    v0 = im["background_e"] + det["read_noise_e"] ** 2
+    s2 = im["peak_snr"] ** 2
+    peak0 = (s2 + np.sqrt(s2 * s2 + 4.0 * s2 * v0)) / 2.0  # S / sqrt(S + v0) = peak_snr
+    drift = _triangle_wave(np.arange(n_frames)[:, None] * np.asarray(im["drift_px_per_frame"])[None, :],
+                           im["max_drift_px"])
+    wander = np.zeros((n_frames, n, 2))
+    for f in range(1, n_frames):
+        wander[f] = (1.0 - im["restoring"]) * wander[f - 1] + rng.normal(0.0, im["jitter_px"], (n, 2))
+    rows = {k: [] for k in ("cell_id", "frame", "time_s", "cell", "row_px", "col_px", "order", "waist_px",
+                            "orientation_deg", "lasing", "changed", "peak_e")}
+    for c, cell in enumerate(dcells):
+        tf = truth_frames[cell["cell_id"]]
+        bleach = np.exp(-times_s / cell["bleach_tau_s"])
+        order_f = np.where(times_s >= change_s[c], later[c], orders[c]) if np.isfinite(change_s[c]) \
+            else np.full(n_frames, orders[c], dtype=object)
+        lasing = ~tf["dropout"]
+        prev, changed = None, np.zeros(n_frames, bool)
+        for f in range(n_frames):
+            if lasing[f]:
+                changed[f] = prev is not None and order_f[f] != prev
+                prev = order_f[f]
+        pos = start[c][None, :] + drift + wander[:, c]
+        rows["cell_id"] += [cell["cell_id"]] * n_frames
+        rows["frame"] += list(range(n_frames))
+        rows["time_s"] += list(times_s)
+        rows["cell"] += [c] * n_frames
+        rows["row_px"] += list(pos[:, 0])
+        rows["col_px"] += list(pos[:, 1])
+        rows["order"] += list(order_f)
+        rows["waist_px"] += [waists[c]] * n_frames
+        rows["orientation_deg"] += list((angles[c] + im["rotation_deg_per_frame"] * np.arange(n_frames)) % 180.0)
+        rows["lasing"] += list(lasing)
+        rows["changed"] += list(changed)
+        rows["peak_e"] += list(peak0 * tf["pump_factor"] * bleach)
+    truth = pd.DataFrame(rows).sort_values(["frame", "cell"], kind="stable").reset_index(drop=True)
+    camera = {"background_e": im["background_e"], "read_noise_e": det["read_noise_e"],
+              "offset_counts": det["offset_counts"], "gain_counts_per_e": det["gain_counts_per_e"],
+              "saturation_counts": det["saturation_counts"]}
+    stack = np.stack(list(iter_pattern_frames(truth, shape=shape, rng=rng, **camera)))
+    cells_truth = [{"cell_id": cell["cell_id"], "image_row_px": float(start[c, 0]),
+                    "image_col_px": float(start[c, 1]), "pattern_order_start": orders[c],
+                    "pattern_order_end": later[c], "pattern_change_s": float(change_s[c])}
+                   for c, cell in enumerate(dcells)]
+    return stack, truth, cells_truth
+
+
+def _simulate_pattern_experiment(*, n_dishes, cells_per_dish, n_frames, frame_interval_s, perturbation_s,
+                                 rng):
+    """Camera stacks only (no spectra): every responder's pattern changes order after its onset."""
+    _validate(n_dishes, cells_per_dish, n_frames, frame_interval_s, perturbation_s)
+    gen = np.random.default_rng(rng)
+    design_rng, *dish_rngs = gen.spawn(1 + n_dishes)
+    dishes, cells = _draw_design(_dish_names(n_dishes), cells_per_dish, perturbation_s, design_rng)
+    times = np.arange(n_frames) * float(frame_interval_s)
+    fields = []
+    for dish, drng in zip(dishes, dish_rngs):
+        dcells = [c for c in cells if c["dish"] == dish["dish"]]
+        pump_rng, field_rng = drng.spawn(2)
+        frames = {}
+        for c in dcells:
+            pump, dropout = _pump_and_dropouts(n_frames, pump_rng)
+            frames[c["cell_id"]] = {"dropout": dropout, "pump_factor": pump}
+        stack, ftruth, ctruth = _simulate_field(dcells, times, frames, field_rng, change_fraction=1.0)
+        fields.append({"field": f"{dish['dish']}-field", "dish": dish["dish"], "stack": stack, "truth": ftruth,
+                       "cells": ctruth})
+    cols = ["cell_id", "dish", "condition", "treated", "responder", "perturbation_s", "onset_s"]
+    truth_cells = {c: [cell[c] for cell in cells] for c in cols}
+    return {"dishes": dishes, "cells": cells, "times_s": times, "fields": fields, "truth_cells": truth_cells}
+
+
 def _simulate_experiment(*, n_dishes, cells_per_dish, n_frames, frame_interval_s, perturbation_s,
-                         imaging_dish, rng):
+                         imaging_dish, rng, images=False):
     """All stacks and truth of one synthetic experiment (no file I/O)."""
     _validate(n_dishes, cells_per_dish, n_frames, frame_interval_s, perturbation_s)
     gen = np.random.default_rng(rng)
@@ -302,6 +434,17 @@ def _simulate_experiment(*, n_dishes, cells_per_dish, n_frames, frame_interval_s
                 frame_parts.append(fr)
                 mode_parts.append(md)
 
+    fields = []
+    if images:
+        # drawn after (and independently of) the spectra: the same seed gives the same spectra with or without
+        image_rng = gen.spawn(1)[0]
+        by_cell = {p["cell_id"][0]: p for p in frame_parts}
+        for dish, frng in zip(dishes, image_rng.spawn(n_dishes)):
+            dcells = [c for c in cells if c["dish"] == dish["dish"]]
+            stack, ftruth, ctruth = _simulate_field(dcells, times, by_cell, frng)
+            fields.append({"field": f"{dish['dish']}-field", "dish": dish["dish"], "stack": stack,
+                           "truth": ftruth, "cells": ctruth})
+
     lam_ref = SCENARIO["gain_center_nm"] * 1e-3
     cell_cols = ["cell_id", "dish", "condition", "treated", "responder", "perturbation_s",
                  "index_change", "response_tau_s", "onset_s"]
@@ -330,4 +473,5 @@ def _simulate_experiment(*, n_dishes, cells_per_dish, n_frames, frame_interval_s
         "truth_cells": truth_cells,
         "truth_cell_frames": _concat(frame_parts),
         "truth_modes": _concat(mode_parts),
+        "fields": fields,
     }

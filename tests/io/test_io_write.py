@@ -110,3 +110,17 @@ def test_read_table_bad_suffix_and_missing(tmp_path):
         read_table(tmp_path / "cells.xlsx", name="cells")
     with pytest.raises(InputError, match="not found"):
         read_table(tmp_path / "cells.parquet", name="cells")
+
+
+def test_columns_with_a_fill_value_may_be_absent(tmp_path):
+    # a cells table written before the pattern and flag columns existed still validates: they are added filled
+    from lasecyto import tables
+
+    required = [c for c in tables.SCHEMAS["cells"] if c.required and c.fill is None]
+    row = {c.name: {"str": "x", "int": 1, "float": 0.5, "bool": False}[c.kind] for c in required}
+    df = tables.validate(pd.DataFrame([row]), "cells")
+    assert df.loc[0, "pattern_dominant_order"] == "" and np.isnan(df.loc[0, "q_value"])
+    assert df.loc[0, "pattern_change_count"] == 0 and not df.loc[0, "self_changed"]
+    assert list(df.columns[:len(tables.SCHEMAS["cells"])]) == [c.name for c in tables.SCHEMAS["cells"]]
+    with pytest.raises(SchemaError, match="missing columns"):
+        tables.validate(pd.DataFrame([row]).drop(columns=["changed"]), "cells")

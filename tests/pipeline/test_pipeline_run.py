@@ -19,7 +19,7 @@ def truth(fp_experiment):
 @pytest.mark.slow
 def test_run_writes_every_table_and_the_record(fp_run):
     out = fp_run.out_dir
-    for name in ("lines", "tracks", "cell_frames", "cells"):
+    for name in ("lines", "tracks", "cell_frames", "patterns", "cells"):
         for suffix in (".parquet", ".csv"):
             path = out / "tables" / f"{name}{suffix}"
             assert path.is_file()
@@ -39,9 +39,21 @@ def test_verdicts_against_truth(fp_run, truth):
     assert len(cells) == len(truth)
     responders = cells[cells["responder"]]
     controls = cells[~cells["treated"]]
+    nonresponders = cells[cells["treated"] & ~cells["responder"]]
     # acceptance of the foundation issue: >= 90 % of responders flagged, <= 10 % of controls
     assert responders["changed"].mean() >= 0.9
     assert controls["changed"].mean() <= 0.1
+    # issue 6 acceptance, end to end: changed is the 5 % FDR flag against the 12 control cells; controls
+    # flagged at most the FDR level plus sampling error (2 binomial standard errors), responders >= 90 %,
+    # non-responding treated cells not above the control rate (upper 95 % Wilson bound)
+    from lasecyto.features import wilson_interval
+
+    record = fp_run.record["analysis"]
+    assert record["changed_rule"] == "fdr flag against the controls" and record["n_controls"] == len(controls)
+    assert controls["changed"].mean() <= 0.05 + 2 * np.sqrt(0.05 * 0.95 / len(controls))
+    assert nonresponders["changed"].mean() <= wilson_interval(int(controls["changed"].sum()), len(controls))[1]
+    assert cells["is_control"].tolist() == (~cells["treated"]).tolist()
+    assert (cells.loc[cells["changed"], "q_value"] <= 0.05).all()
 
 
 @pytest.mark.slow
@@ -58,7 +70,9 @@ def test_onsets_of_responders_against_truth(fp_run, truth):
     r = cells[cells["responder"] & cells["changed"]]
     err = (r["onset_s"] - r["onset_s_true"]).abs()
     dt = 10.0
-    assert err.median() <= 2 * dt
+    # issue 6 acceptance: median onset (change point) error <= 2 frames on generated responders
+    assert err.notna().all() and err.median() <= 2 * dt
+    assert cells.loc[~cells["changed"], "onset_s"].isna().all()
 
 
 @pytest.mark.slow

@@ -224,3 +224,37 @@ def test_bad_design_is_an_input_error(tmp_path):
         write_fp_experiment(tmp_path / "x", n_frames=1)
     with pytest.raises(InputError, match="frame_interval_s"):
         write_fp_experiment(tmp_path / "x", frame_interval_s=0.0)
+
+
+def test_camera_images_beside_the_spectra(tmp_path):
+    from lasecyto.io import read_manifest
+
+    a = write_fp_experiment(tmp_path / "a", n_dishes=2, cells_per_dish=3, n_frames=12, perturbation_s=40.0,
+                            imaging_dish=False, images=True, rng=5)
+    b = write_fp_experiment(tmp_path / "b", n_dishes=2, cells_per_dish=3, n_frames=12, perturbation_s=40.0,
+                            imaging_dish=False, images=False, rng=5)
+    # the spectra do not depend on the images
+    for f in sorted((a.parent / "spectra").iterdir()):
+        assert f.read_bytes() == (b.parent / "spectra" / f.name).read_bytes()
+    assert not (b.parent / "images").exists()
+    m = read_manifest(a)
+    assert m.control_conditions == ("control",) and set(m.fields) == {"A-field", "B-field"}
+    truth = pd.read_csv(a.parent / "truth" / "patterns.csv")
+    frames = pd.read_csv(a.parent / "truth" / "cell_frames.csv")
+    assert len(truth) == 6 * 12
+    # one pump pulse for the spectrum and the image: a pump dropout is dark in both
+    j = truth.merge(frames[["cell_id", "frame", "dropout"]], on=["cell_id", "frame"])
+    assert (j["lasing"] == ~j["dropout"]).all()
+    for cell in m.cells:
+        stack = tifffile.imread(m.fields[cell.field].images)
+        assert stack.shape == (12, 64, 160) and stack.dtype == np.uint16
+        t0 = truth[(truth["cell_id"] == cell.cell_id) & (truth["frame"] == 0)].iloc[0]
+        # the manifest position is the rounded true position at the first frame
+        assert cell.position_px == (round(t0["row_px"]), round(t0["col_px"]))
+        r, c = int(round(t0["row_px"])), int(round(t0["col_px"]))
+        patch = stack[0, r - 12:r + 13, c - 12:c + 13].astype(float)
+        assert patch.max() - 100.0 > 10 * np.sqrt(20.0 + 9.0)  # the pattern stands far above the noise
+    cells = pd.read_csv(a.parent / "truth" / "cells.csv")
+    changed = cells["pattern_change_s"].notna()
+    assert (cells.loc[changed, "responder"]).all()  # only responders change order, after their onset
+    assert (cells.loc[changed, "pattern_change_s"] >= cells.loc[changed, "onset_s"] + 30.0).all()
