@@ -3,7 +3,10 @@
 Each table is long and tidy (one row per observation, a plain RangeIndex) and
 carries its units in its column names (``_nm``, ``_px``, ``_s``, ``_um``,
 ``_counts``).  Wavelengths are vacuum wavelengths.  A table may carry extra
-columns; the columns listed here must be present with the stated kind.
+columns; the columns listed here must be present with the stated kind, except
+columns with a ``fill`` value: a stage that has nothing to say about them may
+leave them out, and :func:`validate` adds them filled with that value (NaN,
+``""`` or False), so every table of one name has the same columns.
 
 :func:`validate` is called by every writer and reader in :mod:`lasecyto.io`
 and may be called by any stage on its inputs.
@@ -27,10 +30,14 @@ class Column:
     kind: str  # "int", "float", "bool", "str"
     unit: str  # "" for dimensionless
     description: str
+    fill: object = None  # value of the column when a stage leaves it out (None: required)
 
 
-def _c(name, kind, unit, description):
-    return Column(name, kind, unit, description)
+def _c(name, kind, unit, description, fill=None):
+    return Column(name, kind, unit, description, fill)
+
+
+_NAN = float("nan")
 
 
 _LINES = (
@@ -59,6 +66,9 @@ _LINES = (
 _TRACKS = _LINES + (
     _c("track_id", "int", "", "mode track within the cell, from 0"),
     _c("mode_family", "int", "", "comb family of the track: 0 is the family carrying most power"),
+    _c("polarization", "str", "", "sphere: 'TE' or 'TM' of the track's mode ('' when not assigned)", ""),
+    _c("mode_number", "int", "", "mode number: angular number l of a sphere mode (-1 when not assigned)", -1),
+    _c("radial_order", "int", "", "sphere: radial order of the track's mode, from 1 (-1 when not assigned)", -1),
 )
 
 _CELL_FRAMES = (
@@ -76,8 +86,20 @@ _CELL_FRAMES = (
     _c("relative_shift_err", "float", "", "1-sigma uncertainty"),
     _c("delta_optical_length_um", "float", "um", "change of the phase optical length n L since baseline"),
     _c("delta_optical_length_err_um", "float", "um", "1-sigma uncertainty"),
-    _c("index_change", "float", "", "change of the gap's refractive index since baseline (needs gap_um)"),
+    _c("index_change", "float", "", "change of the gap's refractive index since baseline (needs gap_um)"
+       "; sphere: of the medium index around the bead"),
     _c("index_change_err", "float", "", "1-sigma uncertainty"),
+    _c("diameter_um", "float", "um", "sphere: bead diameter from the frame's fit", _NAN),
+    _c("diameter_err_um", "float", "um", "1-sigma uncertainty", _NAN),
+    _c("medium_index", "float", "", "sphere: index around the bead at sphere.reference_nm", _NAN),
+    _c("medium_index_err", "float", "", "1-sigma uncertainty", _NAN),
+    _c("diameter_change_um", "float", "um", "sphere: change of the bead diameter since baseline", _NAN),
+    _c("diameter_change_err_um", "float", "um", "1-sigma uncertainty", _NAN),
+    _c("sphere_lines", "int", "", "sphere: lines used in the frame's fit (0: no fit)", 0),
+    _c("sphere_rms_nm", "float", "nm", "sphere: rms residual of the frame's fit", _NAN),
+    _c("pump_energy_nj", "float", "nJ", "pump series: pulse energy of the frame (sidecar)", _NAN),
+    _c("pump_fluence_j_cm2", "float", "J/cm2", "pump series: fluence of the frame (peak for a Gaussian spot)", _NAN),
+    _c("output_counts_per_s", "float", "counts/s", "pump series: summed line area per second of exposure", _NAN),
 )
 
 _CELLS = (
@@ -96,6 +118,45 @@ _CELLS = (
     _c("onset_s", "float", "s", "time the change began (NaN when no change)"),
     _c("onset_err_s", "float", "s", "uncertainty of onset_s"),
     _c("changed", "bool", "", "the cell changed state (rule in DEVELOPERS.md)"),
+    _c("baseline_diameter_um", "float", "um", "sphere: median bead diameter before the perturbation", _NAN),
+    _c("baseline_medium_index", "float", "", "sphere: median medium index before the perturbation", _NAN),
+    _c("diameter_change_um", "float", "um", "sphere: settled change of the bead diameter", _NAN),
+    _c("diameter_change_err_um", "float", "um", "1-sigma uncertainty", _NAN),
+    _c("threshold_nj", "float", "nJ", "pump series: lasing threshold of the main mode (S-curve fit)", _NAN),
+    _c("threshold_err_nj", "float", "nJ", "1-sigma uncertainty", _NAN),
+    _c("beta", "float", "", "pump series: spontaneous-emission factor of the main mode", _NAN),
+    _c("beta_err", "float", "", "1-sigma uncertainty", _NAN),
+    _c("threshold_fluence_j_cm2", "float", "J/cm2", "pump series: threshold fluence (needs the pump spot)", _NAN),
+)
+
+_THRESHOLDS = (
+    _c("cell_id", "str", "", "cell identifier"),
+    _c("track_id", "int", "", "mode track of the cell (its lines in the tracks table)"),
+    _c("center_nm", "float", "nm", "median wavelength of the mode"),
+    _c("n_points", "int", "", "frames (pump values) in the fit"),
+    _c("pump_min_nj", "float", "nJ", "lowest pump energy of the fit"),
+    _c("pump_max_nj", "float", "nJ", "highest pump energy of the fit"),
+    _c("threshold_nj", "float", "nJ", "threshold pump energy of the rate-equation S-curve fit"),
+    _c("threshold_err_nj", "float", "nJ", "1-sigma uncertainty"),
+    _c("beta", "float", "", "spontaneous-emission coupling factor"),
+    _c("beta_err", "float", "", "1-sigma uncertainty"),
+    _c("slope_counts_per_s_per_nj", "float", "counts/s/nJ", "slope efficiency well above threshold"),
+    _c("slope_err_counts_per_s_per_nj", "float", "counts/s/nJ", "1-sigma uncertainty"),
+    _c("linear_threshold_nj", "float", "nJ", "x-intercept of a straight line above threshold (biased low)"),
+    _c("linear_slope_counts_per_s_per_nj", "float", "counts/s/nJ", "slope of that straight line"),
+    _c("linear_n_points", "int", "", "frames in the straight-line fit"),
+    _c("linear_bias", "float", "", "expected relative bias of linear_threshold_nj for the fitted beta"),
+    _c("threshold_fluence_j_cm2", "float", "J/cm2", "threshold fluence (peak for a Gaussian spot; needs the spot)"),
+    _c("max_fluence_j_cm2", "float", "J/cm2", "largest pump fluence of the series (needs the spot)"),
+    _c("max_fluence_skin_mpe_ratio", "float", "", "largest fluence / skin MPE (ANSI Z136.1, IEC 60825-1; cautions apply)"),
+    _c("rms_log", "float", "", "rms of the log-output residuals"),
+    _c("fwhm_low_pump_nm", "float", "nm", "median line FWHM over the lowest-pump quarter of the frames"),
+    _c("fwhm_high_pump_nm", "float", "nm", "median line FWHM over the highest-pump quarter of the frames"),
+    _c("instrument_fwhm_nm", "float", "nm", "instrument FWHM the widths are judged against (manifest)"),
+    _c("narrowing_ratio", "float", "", "fwhm_low_pump_nm / fwhm_high_pump_nm"),
+    _c("instrument_limited", "bool", "", "the width at the highest pumps is within 1.1 x the instrument FWHM"),
+    _c("fit_ok", "bool", "", "the S-curve fit converged with threshold inside the pump range and 0 < beta < 1"),
+    _c("fit_message", "str", "", "empty when fit_ok, else the reason"),
 )
 
 SCHEMAS: dict[str, tuple[Column, ...]] = {
@@ -103,6 +164,7 @@ SCHEMAS: dict[str, tuple[Column, ...]] = {
     "tracks": _TRACKS,
     "cell_frames": _CELL_FRAMES,
     "cells": _CELLS,
+    "thresholds": _THRESHOLDS,
 }
 
 _KIND_CHECK = {
@@ -140,12 +202,15 @@ def validate(table: pd.DataFrame, name: str, *, path=None) -> pd.DataFrame:
         raise SchemaError("not a table", path=where, expected="a pandas DataFrame",
                           found=type(table).__name__)
     cols = _schema(name)
-    missing = [c.name for c in cols if c.name not in table.columns]
+    missing = [c.name for c in cols if c.name not in table.columns and c.fill is None]
     if missing:
         raise SchemaError("missing columns", path=where, field=", ".join(missing),
                           expected="present", found="absent")
     out = {}
     for c in cols:
+        if c.name not in table.columns:
+            out[c.name] = np.full(len(table), c.fill, dtype=_KIND_DTYPE[c.kind])
+            continue
         s = table[c.name]
         if len(s) and not _KIND_CHECK[c.kind](s.dtype):
             raise SchemaError("wrong column type", path=where, field=c.name,

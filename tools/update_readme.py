@@ -15,6 +15,7 @@ TITLES = {
     "tracks": "`tracks`: the lasing lines that were linked into mode tracks (plus `comb_index`)",
     "cell_frames": "`cell_frames`: one row per cell and frame",
     "cells": "`cells`: one row per cell (plus `quantity`, the series judged, and `note`)",
+    "thresholds": "`thresholds`: pump series only, one row per cell and mode fitted",
 }
 
 
@@ -27,7 +28,7 @@ def main():
     path = Path(__file__).resolve().parents[1] / "README.md"
     text = path.read_text()
     parts = []
-    for name in ("lines", "tracks", "cell_frames", "cells"):
+    for name in TITLES:
         schema = tables.describe(name)
         if name == "tracks":
             n_lines = len(tables.SCHEMAS["lines"])
