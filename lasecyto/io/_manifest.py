@@ -10,11 +10,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..exceptions import InputError
+from ._cavity_spec import KINDS, parse_pump, parse_sphere
 from ._sidecar import default_sidecar_path
 
 __all__ = ["CellSpec", "DishSpec", "LampSpec", "Manifest", "missing_files", "read_manifest"]
 
-RESONATORS = ("fabry-perot",)
+RESONATORS = ("fabry-perot", "sphere")
 
 
 @dataclass(frozen=True)
@@ -63,6 +64,9 @@ class Manifest:
     dishes: dict = field(default_factory=dict)
     cells: tuple = ()
     parameters: dict = field(default_factory=dict)
+    kind: str = "time-lapse"
+    sphere: dict | None = None
+    pump: dict | None = None
 
 
 def _join(root, relative):
@@ -175,6 +179,12 @@ def read_manifest(path) -> Manifest:
         p.add("experiment.resonator", "unsupported resonator", " or ".join(repr(r) for r in RESONATORS),
               "absent" if resonator is None else _show(resonator))
     gap_um = p.number(exp, "gap_um", "experiment", positive=True)
+    kind = exp.get("kind", "time-lapse")
+    if kind not in KINDS:
+        p.add("experiment.kind", "unknown experiment kind", " or ".join(repr(k) for k in KINDS), _show(kind))
+        kind = "time-lapse"
+    sphere = parse_sphere(_table(doc, "sphere", p, "sphere"), p, required=resonator == "sphere")
+    pump = parse_pump(_table(doc, "pump", p, "pump"), p, required=kind == "pump-series")
     synthetic = exp.get("synthetic", False)
     if not isinstance(synthetic, bool):
         p.add("experiment.synthetic", "not a boolean", "true or false", _show(synthetic))
@@ -254,7 +264,7 @@ def read_manifest(path) -> Manifest:
         raise InputError(f"{n} problem{'s' if n > 1 else ''} in the manifest: " + "; ".join(p.items), path=path)
     return Manifest(path=path, root=root, name=name, resonator=resonator, gap_um=gap_um, synthetic=synthetic,
                     description=description, lamp=lamp, dishes=dishes, cells=tuple(cells),
-                    parameters=parameters)
+                    parameters=parameters, kind=kind, sphere=sphere, pump=pump)
 
 
 def missing_files(manifest: Manifest) -> list[tuple[str, Path]]:
