@@ -486,8 +486,10 @@ class _ModeTable:
     exact roots at 4 Chebyshev points give a per-mode interpolant (a screening model,
     good to ~1e-8 relative; the refinement is exact).  A mode without a bound root in a
     window (a leaky higher radial order at low contrast) is left out of that window.
-    With ``root='complex'`` only radial orders >= 2 are moved to the complex root here:
-    first-order modes of Q > 1e3 move by < 0.01 nm, far below what screening needs.
+    With ``root='complex'`` only radial orders >= 2 are moved to the complex root here
+    (by their shift at the window centre): first-order modes of Q > 1e3 move by < 0.01 nm,
+    far below what screening needs.  Higher orders of radiation-limited Q below
+    ``_MIN_Q_SCREEN`` (linewidth above ~3 nm: no sharp laser line) are left out.
     """
 
     def __init__(self, m_lo, m_hi, l_lo, l_hi, polarizations, radial_orders, root="complex"):
@@ -503,11 +505,20 @@ class _ModeTable:
         mids = 0.5 * (self.edges[:-1] + self.edges[1:])
         halves = 0.5 * np.diff(self.edges)
         ms = (mids[:, None] + halves[:, None] * t[None, :]).ravel()
-        xs = _roots_many(ell[None, :], ms[:, None], (pol == "TE")[None, :], order[None, :],
-                         "screen" if root == "complex" else "real").reshape(n_win, nodes, ell.size)
+        te = pol == "TE"
+        xs = _roots_many(ell[None, :], ms[:, None], te[None, :], order[None, :], "real").reshape(n_win, nodes, ell.size)
         self.windows = []
         for w in range(n_win):
             keep = np.all(np.isfinite(xs[w]), axis=0)
+            high = keep & (order > 1)
+            if root == "complex" and high.any():
+                # leaky higher orders: the complex root moves them by up to ~1e-3; take that shift
+                # at the window centre for the whole window, and leave out modes of Q < _MIN_Q_SCREEN
+                xr = _roots_many(ell[high], np.full(high.sum(), mids[w]), te[high], order[high], "real")
+                xc = _complex_polish(ell[high], np.full(high.sum(), mids[w]), te[high], xr)
+                q = xc.real / (2.0 * np.abs(xc.imag))
+                xs[w][:, high] += (xc.real - xr)[None, :]
+                keep[np.flatnonzero(high)[~(np.isfinite(q) & (q >= _MIN_Q_SCREEN))]] = False
             coef = np.polynomial.chebyshev.chebfit(t, xs[w][:, keep], nodes - 1) if keep.any() \
                 else np.zeros((nodes, 0))
             self.windows.append((pol[keep], ell[keep], order[keep], mids[w], halves[w], coef))
@@ -528,6 +539,7 @@ class _ModeTable:
 _TABLE_WINDOW = 0.04
 _ORDER_PRIOR_NM = 0.03   # screening penalty per radial order above 1, as a wavelength distance
 _GN_SCREEN_NM = 0.25     # candidates screened this well get their medium index refined too
+_MIN_Q_SCREEN = 200.0    # higher radial orders leakier than this are not considered as lines
 
 
 def _screen(lam, weight, ns_fn, nm_fn, d_range, polarizations, radial_orders, max_keep, root,
@@ -780,6 +792,18 @@ class _FixedModes:
                                   for p, li, n in zip(pols, ls, orders)])
         self.ns_fn, self.nm_fn, self.dispersive = ns_fn, nm_fn, dispersive
         self.mid, self.half = 0.5 * (m_lo + m_hi), 0.5 * (m_hi - m_lo)
+        self._grid = None
+
+    def _indices(self, lam):
+        """ns and nm at ``lam``: linear interpolation on a 0.05 nm table of the callables
+        (error < 1e-10 for the media of :mod:`lasecyto.cavity.media`), built on first use."""
+        if self._grid is None:
+            g = np.arange(float(np.min(lam)) - 5.0, float(np.max(lam)) + 5.0, 0.05)
+            self._grid = (g, _index_table(self.ns_fn, g), _index_table(self.nm_fn, g))
+        g, ns_g, nm_g = self._grid
+        if np.min(lam) < g[0] or np.max(lam) > g[-1]:
+            return _index_table(self.ns_fn, lam), _index_table(self.nm_fn, lam)
+        return np.interp(lam, g, ns_g), np.interp(lam, g, nm_g)
 
     def x(self, m):
         u = (np.asarray(m, dtype=float) - self.mid) / self.half
@@ -789,8 +813,9 @@ class _FixedModes:
     def wavelengths(self, d_um, delta, start_nm):
         lam = np.asarray(start_nm, dtype=float).copy()
         for _ in range(60):
-            nm = _index_table(self.nm_fn, lam) + delta
-            new = math.pi * nm * d_um * 1e3 / self.x(_index_table(self.ns_fn, lam) / nm)
+            ns, nm = self._indices(lam)
+            nm = nm + delta
+            new = math.pi * nm * d_um * 1e3 / self.x(ns / nm)
             if not np.all(np.isfinite(new)):
                 return np.full_like(lam, np.nan)
             if not self.dispersive or np.all(np.abs(new - lam) < _SELF_CONSISTENT_TOL_NM):
@@ -799,78 +824,138 @@ class _FixedModes:
         return np.full_like(lam, np.nan)
 
 
+@dataclass(frozen=True)
+class _LsqResult:
+    x: np.ndarray
+    jac: np.ndarray
+    success: bool
+
+
+def _small_lsq(resid, p0, lo, hi, h, *, max_iter=40):
+    """Damped Gauss-Newton for a handful of bounded parameters (forward-difference Jacobian).
+
+    The size/index model is smooth and nearly linear in (D, index offset), so a few steps
+    from a good start converge; each step costs 1 + n_par model evaluations.  Steps are
+    clipped to the bounds and halved while they do not lower the sum of squares.
+    """
+    p = np.clip(np.asarray(p0, dtype=float), lo, hi)
+    r = resid(p)
+    ssr = float(r @ r)
+    jac = np.zeros((r.size, p.size))
+    for _ in range(max_iter):
+        for i in range(p.size):
+            q = p.copy()
+            q[i] = q[i] + h[i] if q[i] + h[i] <= hi[i] else q[i] - h[i]
+            jac[:, i] = (resid(q) - r) / (q[i] - p[i])
+        step, *_ = np.linalg.lstsq(jac, -r, rcond=None)
+        for _ in range(12):
+            q = np.clip(p + step, lo, hi)
+            rq = resid(q)
+            sq = float(rq @ rq)
+            if sq <= ssr:
+                break
+            step = 0.5 * step
+        else:
+            return _LsqResult(p, jac, True)   # no descent left: at the minimum (to rounding)
+        moved = np.abs(q - p)
+        p, r, ssr = q, rq, sq
+        if np.all(moved <= 1e-12 * np.maximum(1.0, np.abs(p)) + 1e-3 * np.abs(h)):
+            break
+    else:
+        return _LsqResult(p, jac, False)
+    for i in range(p.size):  # Jacobian at the solution
+        q = p.copy()
+        q[i] = q[i] + h[i] if q[i] + h[i] <= hi[i] else q[i] - h[i]
+        jac[:, i] = (resid(q) - r) / (q[i] - p[i])
+    return _LsqResult(p, jac, True)
+
+
 def _fit_fixed(lam, err, pols, ls, orders, ns_fn, nm_fn, dispersive, d_range, delta_range, root,
-               d0=None, delta0=0.0):
-    """Least-squares fit of D (and a constant medium-index offset) for one fixed assignment.
+               d0=None, delta0=0.0, fixed_diameter=None):
+    """Least-squares fit of D and/or a constant medium-index offset for one fixed assignment.
 
     ``delta_range`` None holds the medium index; otherwise it bounds the offset added to
-    ``nm_fn``.  The model interpolates x(m) exactly inside a window of relative index
-    (+-``_M_WINDOW``); when the solution reaches the edge of the window (not a bound of
-    the caller) the window moves there and the fit is repeated.  Returns a dict of plain
-    values (params, cov, pred, resid, ssr, dof, rms, at_bound, success).
+    ``nm_fn``.  ``fixed_diameter`` holds D.  The model interpolates x(m) exactly inside a
+    window of relative index (+-``_M_WINDOW``); when the solution reaches the edge of the
+    window (not a bound of the caller) the window moves there and the fit is repeated.
+    Returns a dict of plain values: params (D, offset), their 2 x 2 covariance (zero for a
+    held parameter), pred, resid, ssr, dof, rms, at_bound, success.
     """
     fit_medium = delta_range is not None
+    fit_d = fixed_diameter is None
+    free = np.array([fit_d, fit_medium])
+    n_par = int(free.sum())
+    if n_par == 0:
+        raise InputError("nothing to fit", field="fit_medium", expected="a free diameter or medium index",
+                         found="both held")
     grid = np.array([float(lam.min()) - 3.0, float(np.median(lam)), float(lam.max()) + 3.0])
     ns_g, nm_g = _index_table(ns_fn, grid), _index_table(nm_fn, grid)
     scale = np.ones_like(lam) if err is None else err
     delta_c = float(delta0) if fit_medium else 0.0
+    failed = dict(params=np.full(2, np.nan), cov=np.full((2, 2), np.nan), pred=np.full_like(lam, np.nan),
+                  resid=np.full_like(lam, np.nan), ssr=math.inf, dof=lam.size - n_par, rms=math.inf,
+                  at_bound=False, success=False)
     for _ in range(6):
         m_lo, m_hi = _m_window(float(ns_g[1] / (nm_g[1] + delta_c)))
         try:
             model = _FixedModes(pols, ls, orders, ns_fn, nm_fn, dispersive, m_lo, m_hi, root)
         except InputError:  # a mode of this assignment has no resonance here: not a solution
-            n_par = 2 if fit_medium else 1
-            return dict(params=np.full(n_par, np.nan), cov=np.full((n_par, n_par), np.nan),
-                        pred=np.full_like(lam, np.nan), resid=np.full_like(lam, np.nan), ssr=math.inf,
-                        dof=lam.size - n_par, rms=math.inf, at_bound=False, success=False)
+            return failed
+        lo_d, hi_d = 0.0, 0.0
         if fit_medium:
             win = (float(np.max(ns_g / m_hi - nm_g)), float(np.min(ns_g / m_lo - nm_g)))
             lo_d, hi_d = max(delta_range[0], win[0]), min(delta_range[1], win[1])
             if not lo_d < hi_d:
-                break
-        start = d0
+                return failed
+        start = d0 if fit_d else float(fixed_diameter)
         if start is None:  # each line alone at the current medium index, median over lines
             nm0 = _index_table(nm_fn, lam) + delta_c
             start = float(np.nanmedian(lam * model.x(_index_table(ns_fn, lam) / nm0) / (math.pi * nm0 * 1e3)))
             if not np.isfinite(start):
                 start = 0.5 * (d_range[0] + d_range[1])
+        full0 = np.array([start, min(max(delta_c, lo_d), hi_d)])
 
-        def resid(params, model=model):
-            r = (model.wavelengths(params[0], params[1] if fit_medium else 0.0, lam) - lam) / scale
+        def unpack(q, full0=full0):
+            full = full0.copy()
+            full[free] = q
+            return full
+
+        def resid(q, model=model, unpack=unpack):
+            d_um, dl = unpack(q)
+            r = (model.wavelengths(d_um, dl, lam) - lam) / scale
             return np.where(np.isfinite(r), r, 1e6)
 
-        p0 = [start] + ([min(max(delta_c, lo_d), hi_d)] if fit_medium else [])
-        lo = [d_range[0]] + ([lo_d] if fit_medium else [])
-        hi = [d_range[1]] + ([hi_d] if fit_medium else [])
-        p0 = np.clip(p0, np.array(lo) + 1e-9, np.array(hi) - 1e-9)
-        sol = least_squares(resid, p0, bounds=(lo, hi), x_scale=[1.0] + ([0.01] if fit_medium else []),
-                            xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=300)
+        lo = np.array([d_range[0], lo_d])[free]
+        hi = np.array([d_range[1], hi_d])[free]
+        p0 = np.clip(full0[free], lo + 1e-9, hi - 1e-9)
+        sol = _small_lsq(resid, p0, lo, hi, np.array([1e-6 * float(full0[0]), 1e-5])[free])
+        params = unpack(sol.x)
         if not fit_medium:
             break
-        d_sol = float(sol.x[1])
-        at_window = ((abs(d_sol - lo_d) < 1e-7 and lo_d > delta_range[0])
-                     or (abs(d_sol - hi_d) < 1e-7 and hi_d < delta_range[1]))
+        at_window = ((abs(params[1] - lo_d) < 1e-7 and lo_d > delta_range[0])
+                     or (abs(params[1] - hi_d) < 1e-7 and hi_d < delta_range[1]))
         if not at_window:
             break
-        delta_c, d0 = d_sol, float(sol.x[0])
-    pred = model.wavelengths(sol.x[0], sol.x[1] if fit_medium else 0.0, lam)
+        delta_c, d0 = float(params[1]), float(params[0])
+    pred = model.wavelengths(params[0], params[1], lam)
     r = lam - pred
     ssr = float(np.sum((r / scale) ** 2))
-    dof = lam.size - len(p0)
+    dof = lam.size - n_par
     try:
-        cov = np.linalg.inv(sol.jac.T @ sol.jac)
+        cov_free = np.linalg.inv(sol.jac.T @ sol.jac)
     except np.linalg.LinAlgError:
-        cov = np.full((len(p0), len(p0)), np.nan)
+        cov_free = np.full((n_par, n_par), np.nan)
     if err is None:
-        cov = cov * (ssr / dof) if dof > 0 else np.full_like(cov, np.nan)
-    user_lo = [d_range[0]] + ([delta_range[0]] if fit_medium else [])
-    user_hi = [d_range[1]] + ([delta_range[1]] if fit_medium else [])
-    tol = 1e-7 * np.maximum(1.0, np.abs(np.array(user_lo + user_hi)))
-    at_bound = bool(np.any(np.abs(sol.x - np.array(user_lo)) < tol[:len(user_lo)])
-                    or np.any(np.abs(sol.x - np.array(user_hi)) < tol[len(user_lo):]))
+        cov_free = cov_free * (ssr / dof) if dof > 0 else np.full_like(cov_free, np.nan)
+    cov = np.zeros((2, 2))
+    cov[np.ix_(free, free)] = cov_free
+    user_lo = np.array([d_range[0], delta_range[0] if fit_medium else 0.0])[free]
+    user_hi = np.array([d_range[1], delta_range[1] if fit_medium else 0.0])[free]
+    tol = 1e-7 * np.maximum(1.0, np.abs(np.concatenate([user_lo, user_hi])))
+    at_bound = bool(np.any(np.abs(sol.x - user_lo) < tol[:n_par]) or np.any(np.abs(sol.x - user_hi) < tol[n_par:]))
     w = 1.0 / scale**2
     rms = float(np.sqrt(np.sum(w * r**2) / np.sum(w)))
-    return dict(params=sol.x, cov=cov, pred=pred, resid=r, ssr=ssr, dof=dof, rms=rms,
+    return dict(params=params, cov=cov, pred=pred, resid=r, ssr=ssr, dof=dof, rms=rms,
                 at_bound=at_bound, success=bool(sol.success) and bool(np.all(np.isfinite(pred))))
 
 
@@ -903,13 +988,17 @@ def _search(lam_in, err_in, ns_in, nm_in, d_range, polarizations, radial_orders,
         base = float(nm_fn(lam_ref))
         delta_range = (nm_bounds[0] - base, nm_bounds[1] - base)
     cands = _screen(lam, weight, ns_fn, nm_fn, d_range, polarizations, radial_orders,
-                    max_keep=max(n_refine, 2), root=root, delta_range=delta_range)
+                    max_keep=3 * max(n_refine, 2), root=root, delta_range=delta_range)
     refined = []
-    for pols, ls, ns, d0, delta0, _ in cands[:n_refine]:
+    for pols, ls, ns, d0, delta0, _ in cands:
         fit = _refine(lam, err, pols, ls, ns, ns_fn, nm_fn, dispersive, d0, d_range, delta_range, root,
                       delta0=delta0)
+        if not np.isfinite(fit["rms"]):   # a mode of this candidate has no resonance there
+            continue
         fit.update(modes=(pols, ls, ns), order=order)
         refined.append(fit)
+        if len(refined) >= n_refine:
+            break
     refined.sort(key=lambda f: (f["rms"], float(f["params"][0])))
     return refined
 
@@ -1103,7 +1192,8 @@ def fit_sphere(wavelength_nm, wavelength_err_nm=None, *, n_sphere, n_medium_gues
 
 def fit_sphere_modes(wavelength_nm, wavelength_err_nm=None, *, polarization, l, radial_order,
                      n_sphere, n_medium_guess, fit_medium=True, diameter_range_um=(3.0, 30.0),
-                     n_medium_bounds=None, reference_nm=None, tolerance_nm=0.02, root="complex"):
+                     n_medium_bounds=None, reference_nm=None, tolerance_nm=0.02, root="complex",
+                     diameter_um=None):
     """Diameter and medium index from lines whose mode identity is known (no search).
 
     In a time-lapse the identity of each track is found once (:func:`fit_sphere` on a
@@ -1129,6 +1219,9 @@ def fit_sphere_modes(wavelength_nm, wavelength_err_nm=None, *, polarization, l, 
         -0.05 / +0.10, never above 0.995 x the sphere index.
     reference_nm : float, optional
         Wavelength at which ``n_medium`` is reported (default: the median line).
+    diameter_um : float, optional
+        Hold the diameter at this value and fit the medium index only (for lines of a
+        single family, which cannot separate the two; ``diameter_err_um`` is then 0).
 
     Returns
     -------
@@ -1137,7 +1230,10 @@ def fit_sphere_modes(wavelength_nm, wavelength_err_nm=None, *, polarization, l, 
         modes (chi2 or rms test) or the fit sits on a bound.
     """
     root = _check_root(root)
-    lam, err = _check_lines(wavelength_nm, wavelength_err_nm, 3 if fit_medium else 2)
+    if diameter_um is not None and not fit_medium:
+        raise InputError("nothing to fit", field="diameter_um, fit_medium",
+                         expected="a free diameter or a free medium index", found="both held")
+    lam, err = _check_lines(wavelength_nm, wavelength_err_nm, 2 if (diameter_um is not None or not fit_medium) else 3)
     def per_line(v):  # a single value applies to every line
         a = np.atleast_1d(np.asarray(v, dtype=object))
         return np.repeat(a, lam.size) if a.size == 1 else a
@@ -1168,7 +1264,14 @@ def fit_sphere_modes(wavelength_nm, wavelength_err_nm=None, *, polarization, l, 
             raise InputError("medium index guess outside its bounds", field="n_medium_guess",
                              expected=f"{nb[0]:.4f}-{nb[1]:.4f}", found=f"{nm_med:.4f}")
         delta_range = (nb[0] - nm_med, nb[1] - nm_med)
-    fit = _fit_fixed(lam, err, np.array(pols), ls, orders, ns_fn, nm_fn, ds or dm, d_range, delta_range, root)
+    fixed = None
+    if diameter_um is not None:
+        fixed = float(diameter_um)
+        if not (np.isfinite(fixed) and d_range[0] <= fixed <= d_range[1]):
+            raise InputError("held diameter outside the diameter range", field="diameter_um",
+                             expected=f"{d_range[0]:g}-{d_range[1]:g} um", found=repr(diameter_um))
+    fit = _fit_fixed(lam, err, np.array(pols), ls, orders, ns_fn, nm_fn, ds or dm, d_range, delta_range, root,
+                     fixed_diameter=fixed)
     n_at = nm_med if reference_nm is None else float(_index_table(nm_fn, np.array([float(reference_nm)]))[0])
     n_med = n_at + (float(fit["params"][1]) if fit_medium else 0.0)
     text = _describe(fit, False, 0.0) if not fit_medium else (
@@ -1236,23 +1339,31 @@ def mode_wavelengths(diameter_um, n_sphere, n_medium, *, wavelength_range_nm,
     m_mid = _check_m(ns_mid / nm_mid)
     x_lo = math.pi * nm_mid * d * 1e3 / (1.03 * hi)
     x_hi = math.pi * nm_mid * d * 1e3 / (0.97 * lo)
+    fams = [(p, n) for p in (_check_polarization(p) for p in polarizations)
+            for n in sorted({_check_order(k) for k in radial_orders})]
+    pol, ell, order = [], [], []
+    for p, n in fams:
+        ls = np.arange(max(1, int(x_lo * 0.9)), int(m_mid * x_hi) + 2)
+        xs = _asymptotic(ls, m_mid, p, n)
+        ls = ls[(xs > 0.97 * x_lo) & (xs < 1.03 * x_hi)]
+        pol += [p] * ls.size
+        ell += ls.tolist()
+        order += [n] * ls.size
+    pol, ell, order = np.array(pol, dtype=object), np.array(ell, dtype=int), np.array(order, dtype=int)
     rows = []
-    for pol in (_check_polarization(p) for p in polarizations):
-        for n in sorted({_check_order(k) for k in radial_orders}):
-            ls = np.arange(max(1, int(x_lo * 0.9)), int(m_mid * x_hi) + 2)
-            xs = _asymptotic(ls, m_mid, pol, n)
-            prev = []
-            for li in ls[(xs > 0.97 * x_lo) & (xs < 1.03 * x_hi)]:
-                hint = 2 * prev[-1] - prev[-2] if len(prev) >= 2 else None
-                x = _root_scalar(int(li), m_mid, pol, n, hint=hint)
-                if not np.isfinite(x):
-                    prev = []
-                    continue
-                prev.append(x)
-                lam0, _ = _predict_one(d, ns_fn, nm_fn, ds or dm, pol, int(li), n,
-                                       math.pi * nm_mid * d * 1e3 / x, x, root=root)
-                if np.isfinite(lam0) and lo <= lam0 <= hi:
-                    rows.append((pol, int(li), n, float(lam0)))
+    if ell.size:
+        # modes bound across the whole interpolation window (leaky high orders are left out)
+        m_lo, m_hi = _m_window(m_mid)
+        te = pol == "TE"
+        ends = _roots_many(ell[None, :], np.array([[m_lo], [m_hi]]), te[None, :], order[None, :], root)
+        keep = np.all(np.isfinite(ends), axis=0)
+        pol, ell, order = pol[keep], ell[keep], order[keep]
+        if ell.size:
+            model = _FixedModes(pol, ell, order, ns_fn, nm_fn, ds or dm, m_lo, m_hi, root)
+            lam = math.pi * nm_mid * d * 1e3 / model.x(np.full(ell.size, m_mid))
+            lam = model.wavelengths(d, 0.0, lam)
+            for k in np.flatnonzero(np.isfinite(lam) & (lam >= lo) & (lam <= hi)):
+                rows.append((str(pol[k]), int(ell[k]), int(order[k]), float(lam[k])))
     rows.sort(key=lambda r: r[3])
     return {"polarization": np.array([r[0] for r in rows], dtype=object),
             "l": np.array([r[1] for r in rows], dtype=int),

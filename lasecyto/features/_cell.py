@@ -18,7 +18,8 @@ _MIN_SETTLED_FRAMES = 5
 
 CHANGE_RULE = (
     "A cell is flagged as changed when its response after the perturbation is both significant and large. "
-    "The quantity is index_change when it is finite in most lasing frames, otherwise relative_shift. "
+    "The quantity is index_change (for a bead: the change of the index around it) when it is finite in most "
+    "lasing frames, otherwise relative_shift. "
     "Only lasing frames with a finite value are used. The baseline window holds the frames before "
     "perturbation_s (at least min_baseline_frames, default 5); the settled window holds the last "
     "settle_fraction (default 25 %, at least 5 frames) of the frames at or after perturbation_s. "
@@ -27,7 +28,9 @@ CHANGE_RULE = (
     "sqrt(s_b^2/n_b + s_s^2/n_s) with s the sample standard deviation of each window (floored by the median "
     "reported error), and change_z = change / baseline_noise. The cell is changed when |change_z| >= z_min "
     "(default 5) and |change| >= min_index_change (default 2e-4) or, for relative_shift, min_relative_shift "
-    "(default 1.5e-4). For a changed cell the onset is the first frame at or after perturbation_s that starts a "
+    "(default 1.5e-4); a processor may judge another series with its own smallest change (the sphere "
+    "processor with sphere.judge = diameter: diameter_change_um, sphere.min_diameter_change_um). "
+    "For a changed cell the onset is the first frame at or after perturbation_s that starts a "
     "run of n_consecutive (default 3) frames beyond baseline mean + k_sigma (default 5) baseline_noise in the "
     "direction of the change; onset_s is half-way between that frame and the frame before it, onset_err_s half "
     "that interval. Without a perturbation time, or with too few baseline or settled frames, the features are "
@@ -71,7 +74,7 @@ def _check_options(**opts):
 
 def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_index_change=2e-4,
                    min_relative_shift=1.5e-4, k_sigma=5.0, n_consecutive=3, settle_fraction=0.25,
-                   min_baseline_frames=5) -> dict:
+                   min_baseline_frames=5, quantity=None, quantity_err=None, min_change=None) -> dict:
     """Change, significance, onset and verdict of one cell.
 
     Parameters
@@ -84,6 +87,10 @@ def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_in
         Mode tracks found for the cell (copied to the result).
     z_min, min_index_change, min_relative_shift, k_sigma, n_consecutive, settle_fraction, min_baseline_frames
         Options of the verdict rule, described in :data:`CHANGE_RULE`.
+    quantity, quantity_err, min_change : optional
+        Judge this column of ``cell_frames`` (error column ``quantity_err``, default
+        ``quantity + "_err"``) with smallest flagged change ``min_change`` instead of the
+        automatic choice (e.g. ``diameter_change_um`` of a bead).
 
     Returns
     -------
@@ -123,12 +130,20 @@ def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_in
 
     las = df[lasing]
     idx = las["index_change"].to_numpy(dtype=float)
-    if las.shape[0] and np.isfinite(idx).sum() * 2 > las.shape[0]:
+    q_err = quantity_err
+    if quantity is not None:
+        q_err = q_err or quantity + "_err"
+        if quantity not in df.columns or q_err not in df.columns or min_change is None:
+            raise InputError("a named series needs its column, its error column and min_change",
+                             field="quantity", expected="columns of cell_frames and min_change",
+                             found=f"{quantity!r}, {q_err!r}, min_change={min_change!r}")
+    elif las.shape[0] and np.isfinite(idx).sum() * 2 > las.shape[0]:
         quantity = "index_change"
     elif las.shape[0] and np.isfinite(las["relative_shift"].to_numpy(dtype=float)).any():
         quantity = "relative_shift"
     else:
         quantity = "index_change"
+    q_err = q_err or quantity + "_err"
     out["quantity"] = quantity
     if las.shape[0] == 0:
         out["note"] = "no lasing frames"
@@ -136,7 +151,7 @@ def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_in
 
     t = las["time_s"].to_numpy(dtype=float)
     q = las[quantity].to_numpy(dtype=float)
-    qe = las[quantity + "_err"].to_numpy(dtype=float)
+    qe = las[q_err].to_numpy(dtype=float)
     opl = las["optical_length_um"].to_numpy(dtype=float)
 
     if math.isnan(perturbation_s):
@@ -183,7 +198,8 @@ def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_in
         return out
     z = change / noise
     out["change_z"] = float(z)
-    min_change = min_index_change if quantity == "index_change" else min_relative_shift
+    if min_change is None:
+        min_change = min_index_change if quantity == "index_change" else min_relative_shift
     changed = bool(abs(z) >= z_min and abs(change) >= min_change)
     out["changed"] = changed
     if changed:

@@ -40,6 +40,9 @@ class CellJob:
     lamp_axis: WavelengthAxis | None = None
     lamp_error: str | None = None
     resonator: str = "fabry-perot"
+    kind: str = "time-lapse"
+    sphere: dict | None = None
+    pump: dict | None = None
 
 
 @dataclass
@@ -73,8 +76,8 @@ def _axis_for(job, sidecar, stack):
                      found="none")
 
 
-def _run_fabry_perot(job: CellJob) -> CellResult:
-    p = job.parameters
+def cell_lines(job: CellJob):
+    """The lines stage of one cell: ``(lines, frame_times_s, n_frames, sidecar)``."""
     with read_stack(job.stack) as stack:
         sidecar = read_sidecar(job.sidecar)
         check_sidecar(sidecar, stack)
@@ -88,8 +91,14 @@ def _run_fabry_perot(job: CellJob) -> CellResult:
         else:
             r0, r1 = 0, stack.n_rows
         times = sidecar.frame_times_s
-        lines = stack_lines(stack, cam, axis, times, rows=(r0, r1), cell_id=job.cell_id, parameters=p)
-        n_frames = stack.n_frames
+        lines = stack_lines(stack, cam, axis, times, rows=(r0, r1), cell_id=job.cell_id,
+                            parameters=job.parameters)
+        return lines, times, stack.n_frames, sidecar
+
+
+def _run_fabry_perot(job: CellJob) -> CellResult:
+    p = job.parameters
+    lines, times, n_frames, _ = cell_lines(job)
     tp = p["tracks"]
     tracks = link_lines(lines, max_step_nm=tp["max_step_nm"], max_gap_frames=tp["max_gap_frames"],
                         min_length_frames=tp["min_length_frames"])
@@ -115,15 +124,20 @@ def _run_fabry_perot(job: CellJob) -> CellResult:
                       tables={"lines": lines, "tracks": tracks, "cell_frames": frames_tab})
 
 
+from ._pump import run_pump_series  # noqa: E402  (the processors use the helpers above)
+from ._sphere import run_sphere  # noqa: E402
+
 #: per-item processing by resonator type (the manifest's ``experiment.resonator``)
-PROCESSORS = {"fabry-perot": _run_fabry_perot}
+PROCESSORS = {"fabry-perot": _run_fabry_perot, "sphere": run_sphere}
+#: per-item processing by experiment kind, ahead of the resonator (``experiment.kind``)
+KIND_PROCESSORS = {"pump-series": run_pump_series}
 
 
 def process_cell(job: CellJob) -> CellResult:
     """Process one cell; a failure is returned as a result, never raised."""
     t0 = time.perf_counter()
     try:
-        result = PROCESSORS[job.resonator](job)
+        result = (KIND_PROCESSORS.get(job.kind) or PROCESSORS[job.resonator])(job)
     except LasecytoError as exc:
         result = CellResult(job.cell_id, "failed", error=str(exc))
     except Exception as exc:  # an unexpected failure must not stop the batch

@@ -74,6 +74,14 @@ def calibrate_lamp(lamp, parameters):
     return solution, summary
 
 
+def _pump_safety(manifest):
+    """The cautions that go with every pump dose or fluence a pump-series run reports."""
+    if manifest.kind != "pump-series":
+        return None
+    from ..safety import CAUTIONS
+    return CAUTIONS
+
+
 def _versions():
     out = {"lasecyto": __version__, "python": sys.version.split()[0], "platform": platform.platform()}
     for name in _DEPENDENCIES:
@@ -196,7 +204,8 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
                             perturbation_s=float(c.perturbation_s), stack=str(c.stack),
                             sidecar=str(c.sidecar), rows=c.rows, gap_um=float(manifest.gap_um),
                             parameters=params, lamp_axis=lamp_axis, lamp_error=lamp_error,
-                            resonator=manifest.resonator))
+                            resonator=manifest.resonator, kind=manifest.kind, sphere=manifest.sphere,
+                            pump=manifest.pump))
 
     bar = None
     if show_progress is None:
@@ -236,7 +245,8 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "versions": _versions(),
         "experiment": {"name": manifest.name, "manifest": str(manifest.path),
-                       "resonator": manifest.resonator, "gap_um": manifest.gap_um,
+                       "resonator": manifest.resonator, "kind": manifest.kind,
+                       "sphere": manifest.sphere, "pump": manifest.pump, "gap_um": manifest.gap_um,
                        "synthetic": manifest.synthetic, "description": manifest.description,
                        "n_cells": len(manifest.cells)},
         "wavelengths": "vacuum (converted from air with the "
@@ -244,6 +254,7 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         "parameters": params,
         "recipe": None if recipe is None else str(recipe),
         "change_rule": CHANGE_RULE,
+        "pump_safety": _pump_safety(manifest),
         "seeds": {"pipeline": "none: every stage is deterministic"},
         "workers": workers,
         "calibration": calib_summary,
