@@ -540,6 +540,7 @@ _TABLE_WINDOW = 0.04
 _ORDER_PRIOR_NM = 0.03   # screening penalty per radial order above 1, as a wavelength distance
 _GN_SCREEN_NM = 0.25     # candidates screened this well get their medium index refined too
 _MIN_Q_SCREEN = 200.0    # higher radial orders leakier than this are not considered as lines
+_AMBIGUITY_DCHI2 = 9.0   # a second assignment within this chi2 of the best one makes the result ambiguous
 
 
 def _screen(lam, weight, ns_fn, nm_fn, d_range, polarizations, radial_orders, max_keep, root,
@@ -1040,6 +1041,8 @@ def _verdict(refined, err, tolerance_nm, fit_medium, nm_ref, d_range):
                        f"{d_range[0]:g}-{d_range[1]:g} um or medium-index bounds): "
                        + _describe(best, fit_medium, nm_ref)), runner_up
     others = [f for f in refined[1:] if f["success"] and _acceptable(f, err, tolerance_nm)]
+    if err is not None:  # with line errors, a clearly worse chi2 is no rival
+        others = [f for f in others if f["ssr"] - best["ssr"] < _AMBIGUITY_DCHI2]
     if others:
         return False, ("ambiguous: " + _describe(best, fit_medium, nm_ref) + " and "
                        + _describe(others[0], fit_medium, nm_ref)

@@ -49,9 +49,10 @@ def _identity_columns(tracks, identity):
     return out
 
 
-def _drop_outliers(fit, lam, err, *, n_sphere, n_medium, diameter_range_um, n_medium_bounds, tolerance_nm,
-                   max_drop=2):
-    """Refit the best assignment without its worst lines (a blend, a stray line), up to ``max_drop``."""
+def _drop_outliers(fit, lam, err, *, n_sphere, n_medium, diameter_range_um, n_medium_bounds, tolerance_nm):
+    """Refit the best assignment without its worst lines (blends, stray lines): up to a quarter
+    of the lines (at least 2), one at a time, keeping at least 4."""
+    max_drop = max(2, lam.size // 4)
     a = fit.assignment
     pols, ls, ns = np.array(a.polarization, dtype=object), np.asarray(a.l), np.asarray(a.radial_order)
     keep = np.ones(lam.size, dtype=bool)

@@ -14,7 +14,7 @@ from ..features import summarize_cell
 from ..safety import pulse_dose
 from ..tracks import link_lines
 
-__all__ = ["fluence_per_nj", "run_pump_series"]
+__all__ = ["fluence_per_nj", "pump_energies", "pump_tables", "run_pump_series"]
 
 
 def fluence_per_nj(pump):
@@ -33,53 +33,68 @@ def _skin_mpe_ratio(pump, energy_nj):
     return math.nan if dose.mpe_ratio is None else float(dose.mpe_ratio)
 
 
-def run_pump_series(job):
-    """Process one cell of a pump series (a ``CellJob`` with ``kind='pump-series'``)."""
-    from ._cell import CellResult, cell_lines
-
-    p, tp_ = job.parameters, job.parameters["threshold"]
-    lines, times, n_frames, sidecar = cell_lines(job)
-    if sidecar.pump_energy_nj is None:
-        raise InputError("a pump series needs the pump energy of every frame", path=sidecar.path,
-                         field="pump_energy_nj", expected="one pump energy per frame", found="absent")
+def pump_energies(sidecar, n_frames):
+    """Pump energy (nJ) and exposure (s) of every frame from a sidecar; clear errors otherwise."""
+    if sidecar is None or sidecar.pump_energy_nj is None:
+        raise InputError("a pump series needs the pump energy of every frame",
+                         path=None if sidecar is None else sidecar.path, field="pump_energy_nj",
+                         expected="one pump energy per frame in the sidecar", found="absent")
     pump_nj = np.asarray(sidecar.pump_energy_nj, dtype=float)
     n_distinct = np.unique(pump_nj).size
-    if n_distinct < 3 or np.any(pump_nj <= 0):
-        raise InputError("a pump series needs several positive pump energies", path=sidecar.path,
-                         field="pump_energy_nj", expected=">= 3 distinct energies > 0",
-                         found=f"{n_distinct} distinct value{'s' if n_distinct != 1 else ''}"
+    if pump_nj.size != n_frames or n_distinct < 3 or np.any(pump_nj <= 0):
+        raise InputError("a pump series needs several positive pump energies, one per frame", path=sidecar.path,
+                         field="pump_energy_nj", expected=f">= 3 distinct energies > 0 over {n_frames} frames",
+                         found=f"{n_distinct} distinct value{'s' if n_distinct != 1 else ''} over {pump_nj.size} frames"
                                + (", some <= 0" if np.any(pump_nj <= 0) else ""))
     exposure = (np.asarray(sidecar.frame_exposure_s, dtype=float) if sidecar.frame_exposure_s is not None
                 else np.full(n_frames, sidecar.exposure_s))
-    tk = p["tracks"]
+    return pump_nj, exposure
+
+
+def pump_tables(lines, *, time_s, pump_nj, exposure_s, pump, parameters, cell_id):
+    """Tracks, ``cell_frames`` and ``thresholds`` of one pump-series cell from its lines.
+
+    ``pump`` is a validated ``[pump]`` table (or None: no fluences, no linewidth judgement).
+    """
+    tp_, tk = parameters["threshold"], parameters["tracks"]
+    n_frames = len(pump_nj)
     # below threshold a mode is a weak, broad line that fails the lasing rule: link every fitted line
     tracks = link_lines(lines, max_step_nm=tk["max_step_nm"], max_gap_frames=tk["max_gap_frames"],
                         min_length_frames=tk["min_length_frames"], only_lasing=False)
     frames = np.arange(n_frames)
-    per_nj = fluence_per_nj(job.pump)
+    per_nj = fluence_per_nj(pump)
     thresholds = fit_pump_series(
-        tracks, frame=frames, pump_nj=pump_nj, exposure_s=exposure, cell_id=job.cell_id,
+        tracks, frame=frames, pump_nj=pump_nj, exposure_s=exposure_s, cell_id=cell_id,
         max_modes=tp_["max_modes"], min_points=tp_["min_points"],
         linear_range=(tp_["linear_min_x"], tp_["linear_max_x"]), output_floor=tp_["output_floor"],
-        fluence_per_nj=per_nj, instrument_fwhm_nm=None if job.pump is None else job.pump.get("instrument_fwhm_nm"),
+        fluence_per_nj=per_nj, instrument_fwhm_nm=None if pump is None else pump.get("instrument_fwhm_nm"),
         resolved_factor=tp_["resolved_factor"])
     if len(thresholds):
-        thresholds["max_fluence_skin_mpe_ratio"] = _skin_mpe_ratio(job.pump, pump_nj.max())
+        thresholds["max_fluence_skin_mpe_ratio"] = _skin_mpe_ratio(pump, np.max(pump_nj))
         thresholds = tables.validate(thresholds, "thresholds")
-
     plain = tracks.copy()
     plain["mode_family"] = -1
     plain["comb_index"] = -1
-    frames_tab = cell_frames(lines, plain, frame=frames, time_s=times, baseline_end_s=-math.inf, gap_um=None,
-                             cell_id=job.cell_id)
+    frames_tab = cell_frames(lines, plain, frame=frames, time_s=time_s, baseline_end_s=-math.inf, gap_um=None,
+                             cell_id=cell_id)
     ok = lines["fit_ok"].to_numpy(bool)
-    out, _ = pump_series_output(lines[ok], frame=frames, exposure_s=exposure)
+    out, _ = pump_series_output(lines[ok], frame=frames, exposure_s=exposure_s)
     fi = lines.loc[ok, "frame"].to_numpy(np.int64)
     frames_tab["pump_energy_nj"] = pump_nj
     frames_tab["pump_fluence_j_cm2"] = pump_nj * per_nj if per_nj is not None else math.nan
     frames_tab["output_counts_per_s"] = np.bincount(fi, weights=out, minlength=n_frames)
-    frames_tab = tables.validate(frames_tab, "cell_frames")
+    return tables.validate(tracks, "tracks"), tables.validate(frames_tab, "cell_frames"), thresholds
 
+
+def run_pump_series(job):
+    """Process one cell of a pump series (a ``CellJob`` with ``kind='pump-series'``)."""
+    from ._cell import CellResult, cell_lines
+
+    p = job.parameters
+    lines, times, n_frames, sidecar = cell_lines(job)
+    pump_nj, exposure = pump_energies(sidecar, n_frames)
+    tracks, frames_tab, thresholds = pump_tables(lines, time_s=times, pump_nj=pump_nj, exposure_s=exposure,
+                                                 pump=job.pump, parameters=p, cell_id=job.cell_id)
     vp = p["verdict"]
     summary = summarize_cell(frames_tab, perturbation_s=math.nan,
                              n_tracks=int(tracks["track_id"].nunique()) if len(tracks) else 0,
@@ -100,5 +115,4 @@ def run_pump_series(job):
         note = "pump series: no mode seen at enough pump energies for a threshold fit"
     cell["note"] = note
     return CellResult(job.cell_id, "ok", cell=cell,
-                      tables={"lines": lines, "tracks": tables.validate(tracks, "tracks"),
-                              "cell_frames": frames_tab, "thresholds": thresholds})
+                      tables={"lines": lines, "tracks": tracks, "cell_frames": frames_tab, "thresholds": thresholds})
