@@ -49,14 +49,15 @@ def register(sub):
     demo.set_defaults(handler=handle_demo)
 
 
-def _summary(result, out=sys.stdout):
+def _summary(result, out=None):
+    out = sys.stdout if out is None else out  # resolved at call time (the stream may be replaced)
     cells = result.tables["cells"]
     print(f"\ntables:     {result.out_dir / 'tables'}  (lines, tracks, cell_frames, cells; .parquet and .csv)",
           file=out)
     print(f"run record: {result.out_dir / 'run_record.json'}", file=out)
     if result.report is not None:
         print(f"report:     {result.report}", file=out)
-    if len(cells):
+    if len(cells) and result.record["experiment"].get("kind", "time-lapse") == "time-lapse":
         print("\nflagged cells by condition:", file=out)
         g = cells.groupby("condition", sort=True)
         width = max(len(str(c)) for c in g.groups)
@@ -72,8 +73,9 @@ def _summary(result, out=sys.stdout):
             print(f"  {it['item']}: {it['error']}", file=out)
 
 
-def _demo_truth_check(experiment_dir, result, out=sys.stdout):
+def _demo_truth_check(experiment_dir, result, out=None):
     """Compare the verdicts with the generator's truth (synthetic data only)."""
+    out = sys.stdout if out is None else out
     import pandas as pd
 
     truth_path = Path(experiment_dir) / "truth" / "cells.csv"
@@ -107,8 +109,9 @@ def handle_run(args):
     return EXIT_PARTIAL if result.n_failed else EXIT_OK
 
 
-def _threshold_summary(result, experiment_dir, out=sys.stdout):
+def _threshold_summary(result, experiment_dir, out=None):
     """Pump series: thresholds of the main modes, against the generator's truth when present."""
+    out = sys.stdout if out is None else out
     import pandas as pd
 
     from ..safety import CAUTIONS

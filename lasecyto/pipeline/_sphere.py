@@ -33,8 +33,8 @@ def _media_error(exc, spec):
     """An InputError of a dispersion formula, restated with the manifest key that chose it."""
     key = "sphere.bead_material" if spec.get("bead_material") and spec["bead_material"] in exc.message \
         else "sphere.medium"
-    return InputError(f"{exc.message.split('; pass extrapolate')[0]} (lines of this cell)", field=key,
-                      expected=exc.expected, found=exc.found)
+    return InputError(f"{exc.message.split('; pass extrapolate')[0]}, asked for by the cell's lines or "
+                      "parameters.sphere.reference_nm", field=key, expected=exc.expected, found=exc.found)
 
 
 def sphere_tables(lines, *, time_s, n_frames, spec, parameters, perturbation_s, cell_id):
