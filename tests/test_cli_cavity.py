@@ -61,6 +61,12 @@ def test_sphere_command_on_a_lines_table(sphere_run, tmp_path, capsys):
     run = sphere_run.tables["cell_frames"]
     run = run[run["cell_id"] == "B-03"].reset_index(drop=True)
     assert frames["medium_index"].to_numpy() == pytest.approx(run["medium_index"].to_numpy(), abs=1e-9, nan_ok=True)
+    # a tracks table is used with its own track ids
+    tracks = sphere_run.out_dir / "tables" / "tracks.csv"
+    assert main(["sphere", str(tracks), "--cell", "B-03", "--bead-material", "ps-ma", "--diameter-range", "10",
+                 "16", "--out", str(tmp_path / "u")]) == 0
+    assert (read_table(tmp_path / "u" / "tracks.parquet", name="tracks")["track_id"].to_numpy()
+            == sphere_run.tables["tracks"].query("cell_id == 'B-03'")["track_id"].to_numpy()).all()
     assert main(["sphere", str(lines), "--bead-material", "polystyrene", "--diameter-range", "16", "10",
                  "--out", str(tmp_path / "t")]) == 1
     err = capsys.readouterr().err

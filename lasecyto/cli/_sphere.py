@@ -71,7 +71,7 @@ def handle(args):
             text = text.replace(key, option)
         raise InputError(text)
     params = resolve_parameters(load_recipe(args.recipe) if args.recipe is not None else {}, source="parameters")
-    lines, _, sidecar = load_lines(args, params)
+    lines, given_tracks, sidecar = load_lines(args, params)
     n_frames, times = frame_times(lines, sidecar)
     all_tracks, all_frames = [], []
     n_ok = 0
@@ -79,7 +79,8 @@ def handle(args):
         cell_lines = cell_lines.reset_index(drop=True)
         tracks, frames_tab, info = sphere_tables(cell_lines, time_s=times, n_frames=n_frames, spec=spec,
                                                  parameters=params, perturbation_s=args.perturbation_s,
-                                                 cell_id=cell_id)
+                                                 cell_id=cell_id,
+                                                 tracks=None if given_tracks is None else cell_lines)
         row = sphere_cell_row(frames_tab, tracks, info, parameters=params, perturbation_s=args.perturbation_s)
         all_tracks.append(tracks)
         all_frames.append(frames_tab)

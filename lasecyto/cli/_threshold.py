@@ -74,13 +74,15 @@ def _handle(args):
 
     pump = _pump_spec(args)
     params = resolve_parameters(load_recipe(args.recipe) if args.recipe is not None else {}, source="parameters")
-    lines, _, sidecar = load_lines(args, params)
+    lines, given_tracks, sidecar = load_lines(args, params)
     n_frames, times = frame_times(lines, sidecar)
     pump_nj, exposure = pump_energies(sidecar, n_frames)
     parts = []
     for cell_id, cell_lines in lines.groupby("cell_id", sort=True):
-        _, _, thr = pump_tables(cell_lines.reset_index(drop=True), time_s=times, pump_nj=pump_nj,
-                                exposure_s=exposure, pump=pump, parameters=params, cell_id=cell_id)
+        cell_lines = cell_lines.reset_index(drop=True)
+        _, _, thr = pump_tables(cell_lines, time_s=times, pump_nj=pump_nj, exposure_s=exposure, pump=pump,
+                                parameters=params, cell_id=cell_id,
+                                tracks=None if given_tracks is None else cell_lines)
         parts.append(thr)
         if not len(thr):
             print(f"{cell_id}: no mode seen at enough pump energies for a threshold fit")

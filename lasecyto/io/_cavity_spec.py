@@ -93,19 +93,26 @@ def _medium(name, where, key, temperature, problems):
     return name
 
 
+def _present(doc, where, problems, *, required, keys, what):
+    """True when the table is there and a table (problems recorded otherwise)."""
+    if doc is None:
+        if required:
+            problems.add(where, "missing table", f"a [{where}] table ({what})", "absent")
+        return False
+    if not isinstance(doc, dict):
+        problems.add(where, "not a table", f"a [{where}] table", type(doc).__name__)
+        return False
+    _unknown_keys(doc, keys, where, problems)
+    return True
+
+
 def parse_sphere(doc, problems, *, required):
     """Validate the ``[sphere]`` table into a dict (None when absent or invalid)."""
     where = "sphere"
-    if doc is None:
-        if required:
-            problems.add(where, "missing table", "a [sphere] table (bead_material, diameter_range_um)",
-                         "absent")
-        return None
-    if not isinstance(doc, dict):
-        problems.add(where, "not a table", "a [sphere] table", type(doc).__name__)
-        return None
     n_before = len(problems.items)
-    _unknown_keys(doc, _SPHERE_KEYS, where, problems)
+    if not _present(doc, where, problems, required=required, keys=_SPHERE_KEYS,
+                    what="bead_material, diameter_range_um"):
+        return None
     temperature = None
     if "temperature_c" in doc:
         if _is_number(doc["temperature_c"]):
@@ -142,16 +149,10 @@ def parse_sphere(doc, problems, *, required):
 def parse_pump(doc, problems, *, required):
     """Validate the ``[pump]`` table into a dict (None when absent or invalid)."""
     where = "pump"
-    if doc is None:
-        if required:
-            problems.add(where, "missing table", "a [pump] table (wavelength_nm, pulse_s) for a pump series",
-                         "absent")
-        return None
-    if not isinstance(doc, dict):
-        problems.add(where, "not a table", "a [pump] table", type(doc).__name__)
-        return None
     n_before = len(problems.items)
-    _unknown_keys(doc, _PUMP_KEYS, where, problems)
+    if not _present(doc, where, problems, required=required, keys=_PUMP_KEYS,
+                    what="wavelength_nm, pulse_s for a pump series"):
+        return None
     out = {
         "wavelength_nm": _positive(doc, "wavelength_nm", where, problems, required=True),
         "pulse_s": _positive(doc, "pulse_s", where, problems, required=True),

@@ -51,16 +51,18 @@ def pump_energies(sidecar, n_frames):
     return pump_nj, exposure
 
 
-def pump_tables(lines, *, time_s, pump_nj, exposure_s, pump, parameters, cell_id):
+def pump_tables(lines, *, time_s, pump_nj, exposure_s, pump, parameters, cell_id, tracks=None):
     """Tracks, ``cell_frames`` and ``thresholds`` of one pump-series cell from its lines.
 
-    ``pump`` is a validated ``[pump]`` table (or None: no fluences, no linewidth judgement).
+    ``pump`` is a validated ``[pump]`` table (or None: no fluences, no linewidth judgement);
+    ``tracks``, when given, are used as they are instead of linking ``lines``.
     """
     tp_, tk = parameters["threshold"], parameters["tracks"]
     n_frames = len(pump_nj)
     # below threshold a mode is a weak, broad line that fails the lasing rule: link every fitted line
-    tracks = link_lines(lines, max_step_nm=tk["max_step_nm"], max_gap_frames=tk["max_gap_frames"],
-                        min_length_frames=tk["min_length_frames"], only_lasing=False)
+    if tracks is None:
+        tracks = link_lines(lines, max_step_nm=tk["max_step_nm"], max_gap_frames=tk["max_gap_frames"],
+                            min_length_frames=tk["min_length_frames"], only_lasing=False)
     frames = np.arange(n_frames)
     per_nj = fluence_per_nj(pump)
     thresholds = fit_pump_series(

@@ -37,7 +37,7 @@ def _media_error(exc, spec):
                       "parameters.sphere.reference_nm", field=key, expected=exc.expected, found=exc.found)
 
 
-def sphere_tables(lines, *, time_s, n_frames, spec, parameters, perturbation_s, cell_id):
+def sphere_tables(lines, *, time_s, n_frames, spec, parameters, perturbation_s, cell_id, tracks=None):
     """Tracks with mode identity and the ``cell_frames`` rows of one bead cell from its lines.
 
     Parameters
@@ -52,6 +52,9 @@ def sphere_tables(lines, *, time_s, n_frames, spec, parameters, perturbation_s, 
         Resolved stage parameters (``tracks`` and ``sphere`` are used).
     perturbation_s : float
         Frames before it form the baseline (NaN: all frames).
+    tracks : pandas.DataFrame, optional
+        The cell's tracks when already linked (``lasecyto sphere`` on a tracks table);
+        otherwise the lines are linked with the ``tracks`` parameters.
 
     Returns
     -------
@@ -63,8 +66,9 @@ def sphere_tables(lines, *, time_s, n_frames, spec, parameters, perturbation_s, 
     if sp["judge"] not in JUDGED:
         raise InputError("unknown series to judge", field="parameters.sphere.judge",
                          expected=" or ".join(repr(k) for k in JUDGED), found=repr(sp["judge"]))
-    tracks = link_lines(lines, max_step_nm=tp["max_step_nm"], max_gap_frames=tp["max_gap_frames"],
-                        min_length_frames=tp["min_length_frames"])
+    if tracks is None:
+        tracks = link_lines(lines, max_step_nm=tp["max_step_nm"], max_gap_frames=tp["max_gap_frames"],
+                            min_length_frames=tp["min_length_frames"])
     n_sphere, n_medium = sphere_media(spec)
     time_s = np.asarray(time_s, dtype=float)
     baseline_end = perturbation_s if np.isfinite(perturbation_s) else float(np.nanmax(time_s)) + 1.0

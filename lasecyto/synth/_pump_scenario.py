@@ -22,11 +22,13 @@ import pathlib
 import numpy as np
 
 from ..exceptions import InputError
-from ._experiment import _camera, _toml_table, _write_csv, _write_json, _write_tiff
+from ._experiment import _camera, _toml_table, _write_json, _write_tiff
 from ._media import _air_to_vacuum_nm, _vacuum_to_air_nm
 from ._render import _eval_polynomial, _lorentzian_pixel_photons, _wavelength_to_pixel
 from ._scenario import DETECTOR, _noisy_stack, _simulate_lamp
-from ._sphere_scenario import SPHERE_SCENARIO, _cell_modes, _detector_window_vacuum_nm, _lamp_files, _sphere_table
+from ._scenario import _validate as _validate_design
+from ._sphere_scenario import (SPHERE_SCENARIO, _cell_modes, _detector_window_vacuum_nm, _finish, _lamp_files,
+                               _sphere_table)
 from ._wgm import wgm_resonances
 
 __all__ = ["steady_state_photons_synth", "write_pump_experiment"]
@@ -76,14 +78,9 @@ def steady_state_photons_synth(x, beta):
 
 
 def _validate(n_dishes, cells_per_dish, n_levels):
-    if not (isinstance(n_dishes, (int, np.integer)) and 1 <= n_dishes <= 26):
-        raise InputError("number of dishes out of range", field="n_dishes", expected="integer 1-26",
-                         found=n_dishes)
-    if not (isinstance(cells_per_dish, (int, np.integer)) and 1 <= cells_per_dish <= 99):
-        raise InputError("number of cells per dish out of range", field="cells_per_dish",
-                         expected="integer 1-99", found=cells_per_dish)
     if not (isinstance(n_levels, (int, np.integer)) and n_levels >= 8):
         raise InputError("too few pump levels", field="n_levels", expected="integer >= 8", found=n_levels)
+    _validate_design(n_dishes, cells_per_dish, n_levels, 1.0, 0.0)   # dishes and cells as elsewhere
 
 
 def _simulate_cell(cell, n_levels, rng):
@@ -265,15 +262,5 @@ def write_pump_experiment(out_dir, *, n_dishes=2, cells_per_dish=3, n_levels=40,
     ]
     for dish in sim["dishes"]:
         parts.append(_toml_table("[[dishes]]", [("dish", dish["dish"]), ("condition", dish["condition"])]))
-    for cell in sim["cells"]:
-        rel = f"spectra/{cell['cell_id']}.tif"
-        parts.append(_toml_table("[[cells]]", [("cell_id", cell["cell_id"]), ("dish", cell["dish"]),
-                                               ("stack", rel), ("sidecar", rel[:-4] + ".json")]))
-    manifest = out / "experiment.toml"
-    manifest.write_text("\n".join(parts), encoding="utf-8")
-    truth = out / "truth"
-    _write_csv(truth / "cells.csv", sim["truth_cells"])
-    _write_csv(truth / "frames.csv", sim["truth_frames"])
-    _write_csv(truth / "modes.csv", sim["truth_modes"])
-    (truth / "README.md").write_text(_README, encoding="utf-8")
-    return manifest
+    return _finish(out, parts, sim["cells"], {"cells.csv": sim["truth_cells"], "frames.csv": sim["truth_frames"],
+                                              "modes.csv": sim["truth_modes"]}, _README)

@@ -26,7 +26,7 @@ from ..exceptions import InputError
 from ._experiment import _camera, _toml_table, _write_csv, _write_json, _write_tiff
 from ._media import _air_to_vacuum_nm, _vacuum_to_air_nm, water_index_daimon
 from ._render import _eval_polynomial, _lorentzian_pixel_photons, _wavelength_to_pixel
-from ._scenario import DETECTOR, LAMP, _noisy_stack, _simulate_lamp
+from ._scenario import DETECTOR, LAMP, _noisy_stack, _simulate_lamp, _validate
 from ._wgm import polystyrene_index_ma, wgm_resonances
 
 __all__ = ["write_sphere_experiment"]
@@ -93,23 +93,6 @@ _README = (
     "polystyrene (Ma et al. 2003 microsphere dispersion); the cytoplasm is water (Daimon & Masumura "
     "2007, 20 degC) plus a constant offset; air follows Ciddor (1996).\n"
 )
-
-
-def _validate(n_dishes, cells_per_dish, n_frames, frame_interval_s, perturbation_s):
-    if not (isinstance(n_dishes, (int, np.integer)) and 1 <= n_dishes <= 26):
-        raise InputError("number of dishes out of range", field="n_dishes", expected="integer 1-26",
-                         found=n_dishes)
-    if not (isinstance(cells_per_dish, (int, np.integer)) and 1 <= cells_per_dish <= 99):
-        raise InputError("number of cells per dish out of range", field="cells_per_dish",
-                         expected="integer 1-99", found=cells_per_dish)
-    if not (isinstance(n_frames, (int, np.integer)) and n_frames >= 2):
-        raise InputError("too few frames", field="n_frames", expected="integer >= 2", found=n_frames)
-    if not (np.isfinite(frame_interval_s) and frame_interval_s > 0):
-        raise InputError("frame interval must be positive", field="frame_interval_s",
-                         expected="> 0 s", found=frame_interval_s)
-    if not (np.isfinite(perturbation_s) and perturbation_s >= 0):
-        raise InputError("perturbation time must be finite and >= 0", field="perturbation_s",
-                         expected=">= 0 s", found=perturbation_s)
 
 
 def _detector_window_vacuum_nm():
@@ -419,16 +402,20 @@ def write_sphere_experiment(out_dir, *, n_dishes=4, cells_per_dish=5, n_frames=6
     for dish in sim["dishes"]:
         parts.append(_toml_table("[[dishes]]", [("dish", dish["dish"]), ("condition", dish["condition"]),
                                                 ("perturbation_s", float(dish["perturbation_s"]))]))
-    for cell in sim["cells"]:
+    return _finish(out, parts, sim["cells"], {"cells.csv": sim["truth_cells"],
+                                              "cell_frames.csv": sim["truth_cell_frames"],
+                                              "modes.csv": sim["truth_modes"]}, _README)
+
+
+def _finish(out, parts, cells, truth_tables, readme):
+    """Append the [[cells]] of one-stack-per-cell experiments, write the manifest and the truth."""
+    for cell in cells:
         rel = f"spectra/{cell['cell_id']}.tif"
         parts.append(_toml_table("[[cells]]", [("cell_id", cell["cell_id"]), ("dish", cell["dish"]),
                                                ("stack", rel), ("sidecar", rel[:-4] + ".json")]))
     manifest = out / "experiment.toml"
     manifest.write_text("\n".join(parts), encoding="utf-8")
-
-    truth = out / "truth"
-    _write_csv(truth / "cells.csv", sim["truth_cells"])
-    _write_csv(truth / "cell_frames.csv", sim["truth_cell_frames"])
-    _write_csv(truth / "modes.csv", sim["truth_modes"])
-    (truth / "README.md").write_text(_README, encoding="utf-8")
+    for name, columns in truth_tables.items():
+        _write_csv(out / "truth" / name, columns)
+    (out / "truth" / "README.md").write_text(readme, encoding="utf-8")
     return manifest
