@@ -14,11 +14,20 @@ Radial order n counts the roots upward from x = (l + 1/2)/m.  The asymptotic for
 Lam, Leung & Young (1992), J. Opt. Soc. Am. B 9, 1585 (:func:`asymptotic_size_parameter`)
 serves only to bracket the roots; it is off by 0.1-0.2 % for beads in water.
 
-Functions: :func:`exact_size_parameter`, :func:`asymptotic_size_parameter`,
-:func:`resonance_wavelengths` (indices may be callables of wavelength, solved
-self-consistently), :func:`assign_modes` (polarisation, l, radial order of measured
-lines) and :func:`fit_sphere` (diameter and medium index with uncertainties).
-Wavelengths are vacuum nm, diameters um.
+The outgoing-wave form with xi_l = psi_l + i chi_l has complex roots x_r - i x_i: x_r is
+the resonance of the (leaky) mode and Q = x_r / (2 x_i) its radiation-limited quality
+factor (:func:`complex_size_parameter`).  Wavelength predictions and fits use the complex
+root by default (``root="complex"``); for Q >> 1 the two forms agree to a few 1e-6, for a
+leaky second-order mode of a bead in a cell (Q ~ 1e2) they differ by ~1e-3.
+
+Functions: :func:`exact_size_parameter`, :func:`complex_size_parameter`,
+:func:`asymptotic_size_parameter`, :func:`resonance_wavelengths` (indices may be callables
+of wavelength, solved self-consistently), :func:`mode_wavelengths` (every mode in a
+wavelength range), :func:`assign_modes` (polarisation, l, radial order of measured lines),
+:func:`fit_sphere` (mode search, diameter and medium index with uncertainties) and
+:func:`fit_sphere_modes` (diameter and medium index from lines of known identity, fast:
+the exact x(m) of each mode is interpolated from exact roots).  Wavelengths are vacuum
+nm, diameters um.
 """
 
 from __future__ import annotations
@@ -27,7 +36,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import brentq, least_squares, linear_sum_assignment
+from scipy.optimize import brentq, linear_sum_assignment
 from scipy.special import ai_zeros, spherical_jn, spherical_yn
 from scipy.stats import chi2 as _chi2_dist
 

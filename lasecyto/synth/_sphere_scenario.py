@@ -27,7 +27,7 @@ from ._experiment import _camera, _toml_table, _write_csv, _write_json, _write_t
 from ._media import _air_to_vacuum_nm, _vacuum_to_air_nm, water_index_daimon
 from ._render import _eval_polynomial, _lorentzian_pixel_photons, _wavelength_to_pixel
 from ._scenario import DETECTOR, LAMP, _noisy_stack, _simulate_lamp, _validate
-from ._wgm import polystyrene_index_ma, wgm_resonances
+from ._wgm import wgm_resonances
 
 __all__ = ["write_sphere_experiment"]
 
