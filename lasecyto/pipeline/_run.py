@@ -19,7 +19,8 @@ from .. import tables
 from .._version import __version__
 from ..calibration import reference_lines, solve_dispersion
 from ..exceptions import InputError, LasecytoError
-from ..io import file_sha256, missing_files, read_manifest, read_sidecar, read_stack, write_json, write_table
+from ..io import (atomic_path, file_sha256, missing_files, read_manifest, read_sidecar, read_stack, write_json,
+                  write_table)
 from ._cell import CellJob, CellResult, process_cell
 from ._params import load_recipe, resolve_parameters
 
@@ -265,6 +266,9 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
                           "csv": f"tables/{name}.csv"} for name, t in out_tables.items()},
     }
     write_json(record, out_dir / "run_record.json")
+    if record["pump_safety"] is not None:  # beside the tables that show pump energies and fluences
+        with atomic_path(out_dir / "pump_safety.txt") as tmp:
+            tmp.write_text(record["pump_safety"] + "\n", encoding="utf-8")
 
     report = None
     if write_report:

@@ -40,6 +40,7 @@ def test_fluence_and_cautions_go_together(pump_run, pump_experiment):
     np.testing.assert_allclose(frames["pump_fluence_j_cm2"], frames["pump_energy_nj"] * per_nj)
     record = json.loads((pump_run.out_dir / "run_record.json").read_text())
     assert record["pump_safety"] == CAUTIONS and record["experiment"]["kind"] == "pump-series"
+    assert (pump_run.out_dir / "pump_safety.txt").read_text() == CAUTIONS + "\n"
     assert (thr["max_fluence_skin_mpe_ratio"] > 0).all()
 
 
