@@ -87,8 +87,8 @@ def _medium(name, where, key, temperature, problems):
     name = name.strip().lower()
     try:
         get_medium(name, temperature_c=temperature if name == "water-iapws" else None)
-    except InputError as exc:
-        problems.add(f"{where}.temperature_c", exc.message, exc.expected, exc.found)
+    except InputError as exc:  # the formula's own limits (its advice on arguments does not apply here)
+        problems.add(f"{where}.temperature_c", exc.message.split(";")[0], exc.expected, exc.found)
         return None
     return name
 
