@@ -66,9 +66,9 @@ _LINES = (
 _TRACKS = _LINES + (
     _c("track_id", "int", "", "mode track within the cell, from 0"),
     _c("mode_family", "int", "", "comb family of the track: 0 is the family carrying most power"),
-    _c("polarization", "str", "", "sphere: 'TE' or 'TM' of the track's mode ('' when not assigned)", ""),
-    _c("mode_number", "int", "", "mode number: angular number l of a sphere mode (-1 when not assigned)", -1),
-    _c("radial_order", "int", "", "sphere: radial order of the track's mode, from 1 (-1 when not assigned)", -1),
+    _c("polarization", "str", "", "sphere: 'TE' or 'TM' of the track's mode ('' when not assigned)", fill=""),
+    _c("mode_number", "int", "", "mode number: angular number l of a sphere mode (-1 when not assigned)", fill=-1),
+    _c("radial_order", "int", "", "sphere: radial order of the track's mode, from 1 (-1 when not assigned)", fill=-1),
 )
 
 _CELL_FRAMES = (
@@ -89,17 +89,17 @@ _CELL_FRAMES = (
     _c("index_change", "float", "", "change of the gap's refractive index since baseline (needs gap_um)"
        "; sphere: of the medium index around the bead"),
     _c("index_change_err", "float", "", "1-sigma uncertainty"),
-    _c("diameter_um", "float", "um", "sphere: bead diameter from the frame's fit", _NAN),
-    _c("diameter_err_um", "float", "um", "1-sigma uncertainty", _NAN),
-    _c("medium_index", "float", "", "sphere: index around the bead at sphere.reference_nm", _NAN),
-    _c("medium_index_err", "float", "", "1-sigma uncertainty", _NAN),
-    _c("diameter_change_um", "float", "um", "sphere: change of the bead diameter since baseline", _NAN),
-    _c("diameter_change_err_um", "float", "um", "1-sigma uncertainty", _NAN),
-    _c("sphere_lines", "int", "", "sphere: lines used in the frame's fit (0: no fit)", 0),
-    _c("sphere_rms_nm", "float", "nm", "sphere: rms residual of the frame's fit", _NAN),
-    _c("pump_energy_nj", "float", "nJ", "pump series: pulse energy of the frame (sidecar)", _NAN),
-    _c("pump_fluence_j_cm2", "float", "J/cm2", "pump series: fluence of the frame (peak for a Gaussian spot)", _NAN),
-    _c("output_counts_per_s", "float", "counts/s", "pump series: summed line area per second of exposure", _NAN),
+    _c("diameter_um", "float", "um", "sphere: bead diameter from the frame's fit", fill=_NAN),
+    _c("diameter_err_um", "float", "um", "1-sigma uncertainty", fill=_NAN),
+    _c("medium_index", "float", "", "sphere: index around the bead at sphere.reference_nm", fill=_NAN),
+    _c("medium_index_err", "float", "", "1-sigma uncertainty", fill=_NAN),
+    _c("diameter_change_um", "float", "um", "sphere: change of the bead diameter since baseline", fill=_NAN),
+    _c("diameter_change_err_um", "float", "um", "1-sigma uncertainty", fill=_NAN),
+    _c("sphere_lines", "int", "", "sphere: lines used in the frame's fit (0: no fit)", fill=0),
+    _c("sphere_rms_nm", "float", "nm", "sphere: rms residual of the frame's fit", fill=_NAN),
+    _c("pump_energy_nj", "float", "nJ", "pump series: pulse energy of the frame (sidecar)", fill=_NAN),
+    _c("pump_fluence_j_cm2", "float", "J/cm2", "pump series: fluence of the frame (peak for a Gaussian spot)", fill=_NAN),
+    _c("output_counts_per_s", "float", "counts/s", "pump series: summed line area per second of exposure", fill=_NAN),
 )
 
 _CELLS = (
@@ -118,15 +118,15 @@ _CELLS = (
     _c("onset_s", "float", "s", "time the change began (NaN when no change)"),
     _c("onset_err_s", "float", "s", "uncertainty of onset_s"),
     _c("changed", "bool", "", "the cell changed state (rule in DEVELOPERS.md)"),
-    _c("baseline_diameter_um", "float", "um", "sphere: median bead diameter before the perturbation", _NAN),
-    _c("baseline_medium_index", "float", "", "sphere: median medium index before the perturbation", _NAN),
-    _c("diameter_change_um", "float", "um", "sphere: settled change of the bead diameter", _NAN),
-    _c("diameter_change_err_um", "float", "um", "1-sigma uncertainty", _NAN),
-    _c("threshold_nj", "float", "nJ", "pump series: lasing threshold of the main mode (S-curve fit)", _NAN),
-    _c("threshold_err_nj", "float", "nJ", "1-sigma uncertainty", _NAN),
-    _c("beta", "float", "", "pump series: spontaneous-emission factor of the main mode", _NAN),
-    _c("beta_err", "float", "", "1-sigma uncertainty", _NAN),
-    _c("threshold_fluence_j_cm2", "float", "J/cm2", "pump series: threshold fluence (needs the pump spot)", _NAN),
+    _c("baseline_diameter_um", "float", "um", "sphere: median bead diameter before the perturbation", fill=_NAN),
+    _c("baseline_medium_index", "float", "", "sphere: median medium index before the perturbation", fill=_NAN),
+    _c("diameter_change_um", "float", "um", "sphere: settled change of the bead diameter", fill=_NAN),
+    _c("diameter_change_err_um", "float", "um", "1-sigma uncertainty", fill=_NAN),
+    _c("threshold_nj", "float", "nJ", "pump series: lasing threshold of the main mode (S-curve fit)", fill=_NAN),
+    _c("threshold_err_nj", "float", "nJ", "1-sigma uncertainty", fill=_NAN),
+    _c("beta", "float", "", "pump series: spontaneous-emission factor of the main mode", fill=_NAN),
+    _c("beta_err", "float", "", "1-sigma uncertainty", fill=_NAN),
+    _c("threshold_fluence_j_cm2", "float", "J/cm2", "pump series: threshold fluence (needs the pump spot)", fill=_NAN),
 )
 
 _THRESHOLDS = (
