@@ -69,12 +69,14 @@ _LINES = (
 _TRACKS = _LINES + (
     _c("track_id", "int", "", "mode track within the cell, from 0"),
     _c("mode_family", "int", "", "comb family of the track: 0 is the family carrying most power"),
-    _c("mode_number", "int", "", "longitudinal mode number q (-1 when not assigned; rule in DEVELOPERS.md)",
-       False),
+    _c("mode_number", "int", "",
+       "mode number: longitudinal q (Fabry-Perot) or angular number l (sphere); -1 when not assigned", fill=-1),
     _c("transverse_order", "int", "", "transverse order k of the track's family, 0 = fundamental (-1 unknown)",
-       False),
+       fill=-1),
     _c("hop", "bool", "", "first row of a track that began by a mode hop of about one FSR from another track",
-       False),
+       fill=False),
+    _c("polarization", "str", "", "sphere: 'TE' or 'TM' of the track's mode ('' when not assigned)", fill=""),
+    _c("radial_order", "int", "", "sphere: radial order of the track's mode, from 1 (-1 when not assigned)", fill=-1),
 )
 
 _CELL_FRAMES = (
@@ -93,7 +95,8 @@ _CELL_FRAMES = (
     _c("delta_optical_length_um", "float", "um", "change of the phase optical length n L since baseline"),
     _c("delta_optical_length_err_um", "float", "um", "1-sigma uncertainty"),
     _c("index_change", "float", "",
-       "change of the cell's refractive index since baseline (needs gap_um or cell_thickness_um)"),
+       "change of the cell's refractive index since baseline (needs gap_um or cell_thickness_um); "
+       "sphere: of the medium index around the bead"),
     _c("index_change_err", "float", "", "1-sigma uncertainty"),
     _c("reference_nm", "float", "nm", "wavelength at which phase_optical_length_um is given (per cell)", False),
     _c("phase_optical_length_um", "float", "um",
@@ -112,6 +115,17 @@ _CELL_FRAMES = (
     _c("pattern_change", "bool", "", "pattern_corr fell below the change threshold", fill=False),
     _c("pattern_baseline_corr", "float", "",
        "correlation with the cell's mean pattern before the perturbation (aligned)", fill=_NAN),
+    _c("diameter_um", "float", "um", "sphere: bead diameter from the frame's fit", fill=_NAN),
+    _c("diameter_err_um", "float", "um", "1-sigma uncertainty", fill=_NAN),
+    _c("medium_index", "float", "", "sphere: index around the bead at sphere.reference_nm", fill=_NAN),
+    _c("medium_index_err", "float", "", "1-sigma uncertainty", fill=_NAN),
+    _c("diameter_change_um", "float", "um", "sphere: change of the bead diameter since baseline", fill=_NAN),
+    _c("diameter_change_err_um", "float", "um", "1-sigma uncertainty", fill=_NAN),
+    _c("sphere_lines", "int", "", "sphere: lines used in the frame's fit (0: no fit)", fill=0),
+    _c("sphere_rms_nm", "float", "nm", "sphere: rms residual of the frame's fit", fill=_NAN),
+    _c("pump_energy_nj", "float", "nJ", "pump series: pulse energy of the frame (sidecar)", fill=_NAN),
+    _c("pump_fluence_j_cm2", "float", "J/cm2", "pump series: fluence of the frame (peak for a Gaussian spot)", fill=_NAN),
+    _c("output_counts_per_s", "float", "counts/s", "pump series: summed line area per second of exposure", fill=_NAN),
 )
 
 _CELLS = (
@@ -194,6 +208,45 @@ _PREDICTIONS = (
     _c("prediction", "str", "", "predicted class (empty when the cell could not be judged)"),
     _c("probability", "float", "", "model probability of the predicted class"),
     _c("prediction_note", "str", "", "empty, or why the cell was not predicted"),
+    _c("baseline_diameter_um", "float", "um", "sphere: median bead diameter before the perturbation", fill=_NAN),
+    _c("baseline_medium_index", "float", "", "sphere: median medium index before the perturbation", fill=_NAN),
+    _c("diameter_change_um", "float", "um", "sphere: settled change of the bead diameter", fill=_NAN),
+    _c("diameter_change_err_um", "float", "um", "1-sigma uncertainty", fill=_NAN),
+    _c("threshold_nj", "float", "nJ", "pump series: lasing threshold of the main mode (S-curve fit)", fill=_NAN),
+    _c("threshold_err_nj", "float", "nJ", "1-sigma uncertainty", fill=_NAN),
+    _c("beta", "float", "", "pump series: spontaneous-emission factor of the main mode", fill=_NAN),
+    _c("beta_err", "float", "", "1-sigma uncertainty", fill=_NAN),
+    _c("threshold_fluence_j_cm2", "float", "J/cm2", "pump series: threshold fluence (needs the pump spot)", fill=_NAN),
+)
+
+_THRESHOLDS = (
+    _c("cell_id", "str", "", "cell identifier"),
+    _c("track_id", "int", "", "mode track of the cell (its lines in the tracks table)"),
+    _c("center_nm", "float", "nm", "median wavelength of the mode"),
+    _c("n_points", "int", "", "frames (pump values) in the fit"),
+    _c("pump_min_nj", "float", "nJ", "lowest pump energy of the fit"),
+    _c("pump_max_nj", "float", "nJ", "highest pump energy of the fit"),
+    _c("threshold_nj", "float", "nJ", "threshold pump energy of the rate-equation S-curve fit"),
+    _c("threshold_err_nj", "float", "nJ", "1-sigma uncertainty"),
+    _c("beta", "float", "", "spontaneous-emission coupling factor"),
+    _c("beta_err", "float", "", "1-sigma uncertainty"),
+    _c("slope_counts_per_s_per_nj", "float", "counts/s/nJ", "slope efficiency well above threshold"),
+    _c("slope_err_counts_per_s_per_nj", "float", "counts/s/nJ", "1-sigma uncertainty"),
+    _c("linear_threshold_nj", "float", "nJ", "x-intercept of a straight line above threshold (biased low)"),
+    _c("linear_slope_counts_per_s_per_nj", "float", "counts/s/nJ", "slope of that straight line"),
+    _c("linear_n_points", "int", "", "frames in the straight-line fit"),
+    _c("linear_bias", "float", "", "expected relative bias of linear_threshold_nj for the fitted beta"),
+    _c("threshold_fluence_j_cm2", "float", "J/cm2", "threshold fluence (peak for a Gaussian spot; needs the spot)"),
+    _c("max_fluence_j_cm2", "float", "J/cm2", "largest pump fluence of the series (needs the spot)"),
+    _c("max_fluence_skin_mpe_ratio", "float", "", "largest fluence / skin MPE (ANSI Z136.1, IEC 60825-1; cautions apply)"),
+    _c("rms_log", "float", "", "rms of the log-output residuals"),
+    _c("fwhm_low_pump_nm", "float", "nm", "median line FWHM over the lowest-pump quarter of the frames"),
+    _c("fwhm_high_pump_nm", "float", "nm", "median line FWHM over the highest-pump quarter of the frames"),
+    _c("instrument_fwhm_nm", "float", "nm", "instrument FWHM the widths are judged against (manifest)"),
+    _c("narrowing_ratio", "float", "", "fwhm_low_pump_nm / fwhm_high_pump_nm"),
+    _c("instrument_limited", "bool", "", "the width at the highest pumps is within 1.1 x the instrument FWHM"),
+    _c("fit_ok", "bool", "", "the S-curve fit converged with threshold inside the pump range and 0 < beta < 1"),
+    _c("fit_message", "str", "", "empty when fit_ok, else the reason"),
 )
 
 SCHEMAS: dict[str, tuple[Column, ...]] = {
@@ -203,6 +256,7 @@ SCHEMAS: dict[str, tuple[Column, ...]] = {
     "cells": _CELLS,
     "patterns": _PATTERNS,
     "predictions": _PREDICTIONS,
+    "thresholds": _THRESHOLDS,
 }
 
 _KIND_CHECK = {

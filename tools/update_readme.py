@@ -19,6 +19,7 @@ TITLES = {
     "patterns": "`patterns`: one row per emission-image region per frame (runs with images; "
                 "`lasecyto patterns`)",
     "predictions": "`predictions`: one row per cell from `lasecyto classify apply` (plus `p_<class>` per class)",
+    "thresholds": "`thresholds`: pump series only, one row per cell and mode fitted",
 }
 
 

@@ -273,7 +273,8 @@ def _log_s(log_x, log_beta):
     return np.log(steady_state_photons(np.exp(log_x), math.exp(log_beta)))
 
 
-def fit_threshold(pump, output, *, output_err=None, linear_range=(2.0, 5.0), spot_area_cm2=None):
+def fit_threshold(pump, output, *, output_err=None, linear_range=(2.0, 5.0), spot_area_cm2=None,
+                  absolute_sigma=True):
     """Fit the rate-equation S-curve to a pump series on log-log axes.
 
     Parameters
@@ -288,7 +289,12 @@ def fit_threshold(pump, output, *, output_err=None, linear_range=(2.0, 5.0), spo
     linear_range : (float, float)
         Pump range, in units of the fitted threshold, of the straight-line estimate.
     spot_area_cm2 : float, optional
-        Pump spot area; with the pump in J gives the threshold fluence.
+        Pump spot area; with the pump in J gives the threshold fluence.  For a Gaussian
+        spot pass pi w^2 / 2, so that the fluence is the peak fluence.
+    absolute_sigma : bool
+        With ``output_err``: True uses the errors as they are; False scales the
+        covariance up by the reduced chi-square when it exceeds 1 (Birge ratio), for
+        errors known only up to unmodelled scatter.
 
     Returns
     -------
@@ -350,6 +356,8 @@ def fit_threshold(pump, output, *, output_err=None, linear_range=(2.0, 5.0), spo
         cov = np.full((3, 3), np.nan)
     if output_err is None:
         cov = cov * (ssr / dof) if dof > 0 else np.full((3, 3), np.nan)
+    elif not absolute_sigma and dof > 0:
+        cov = cov * max(1.0, ssr / dof)
     sd = np.sqrt(np.clip(np.diag(cov), 0, None))
     a, p_th, beta = math.exp(la), math.exp(lt), math.exp(lb)
     # slope efficiency A / (beta P_th): gradient of its log is (1, -1, -1)

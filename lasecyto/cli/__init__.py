@@ -25,7 +25,8 @@ from ._run import _summary
 __all__ = ["main", "_summary", "EXIT_OK", "EXIT_ERROR", "EXIT_USAGE", "EXIT_PARTIAL"]
 
 #: command modules, in the order ``lasecyto --help`` lists them
-_COMMANDS = ("_run", "_report", "_lines", "_track", "_patterns", "_classify")
+_COMMANDS = ("_run", "_report", "_lines", "_track", "_sphere", "_threshold", "_dose", "_patterns",
+             "_classify")
 
 
 def _parser():

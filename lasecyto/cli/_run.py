@@ -9,6 +9,14 @@ from pathlib import Path
 from ._common import EXIT_OK, EXIT_PARTIAL
 
 
+#: demo scenarios: name -> (generator in lasecyto.synth, what it is)
+_SCENARIOS = {
+    "fabry-perot": ("write_fp_experiment", "a hypertonic shift assay of cell lasers in a Fabry-Perot gap"),
+    "sphere": ("write_sphere_experiment", "a medium-shift assay of dye-doped bead lasers inside cells"),
+    "pump": ("write_pump_experiment", "a pump-threshold series of bead lasers"),
+}
+
+
 def _add_run_options(p, workers=1):
     p.add_argument("--workers", type=int, default=workers, metavar="N",
                    help=f"worker processes (default {workers}; each opens its own files)")
@@ -35,18 +43,22 @@ def register(sub):
     demo.add_argument("--out", type=Path, default=Path("demo-output"), metavar="DIR",
                       help="output directory (default: demo-output)")
     demo.add_argument("--seed", type=int, default=2026, help="seed of the generator (default 2026)")
+    demo.add_argument("--scenario", choices=tuple(_SCENARIOS), default="fabry-perot",
+                      help="fabry-perot (default): cells in a mirror gap, hypertonic shift; sphere: dye-doped "
+                           "beads in cells, medium shift; pump: a pump-threshold series of bead lasers")
     _add_run_options(demo, workers=min(2, os.cpu_count() or 1))
     demo.set_defaults(handler=handle_demo)
 
 
-def _summary(result, out=sys.stdout):
+def _summary(result, out=None):
+    out = sys.stdout if out is None else out  # resolved at call time (the stream may be replaced)
     cells = result.tables["cells"]
     names = ", ".join(n for n in result.tables if n in ("lines", "tracks", "cell_frames", "patterns", "cells"))
     print(f"\ntables:     {result.out_dir / 'tables'}  ({names}; .parquet and .csv)", file=out)
     print(f"run record: {result.out_dir / 'run_record.json'}", file=out)
     if result.report is not None:
         print(f"report:     {result.report}", file=out)
-    if len(cells):
+    if len(cells) and result.record["experiment"].get("kind", "time-lapse") == "time-lapse":
         print("\nflagged cells by condition:", file=out)
         g = cells.groupby("condition", sort=True)
         width = max(len(str(c)) for c in g.groups)
@@ -88,8 +100,9 @@ def _analysis_summary(analysis, cells, out):
                 print(f"    {r.cell_id}: {r.pattern_note}", file=out)
 
 
-def _demo_truth_check(experiment_dir, result, out=sys.stdout):
+def _demo_truth_check(experiment_dir, result, out=None):
     """Compare the verdicts with the generator's truth (synthetic data only)."""
+    out = sys.stdout if out is None else out
     import pandas as pd
 
     truth_path = Path(experiment_dir) / "truth" / "cells.csv"
@@ -136,18 +149,49 @@ def handle_run(args):
     result = _run(args, args.manifest, args.out)
     if not args.quiet:
         _summary(result)
+        _threshold_summary(result, None)
     return EXIT_PARTIAL if result.n_failed else EXIT_OK
 
 
-def handle_demo(args):
-    from ..synth import write_fp_experiment
+def _threshold_summary(result, experiment_dir, out=None):
+    """Pump series: thresholds of the main modes, against the generator's truth when present."""
+    out = sys.stdout if out is None else out
+    import pandas as pd
 
+    from ..safety import CAUTIONS
+
+    thr = result.tables.get("thresholds")
+    if thr is None:
+        return
+    truth_path = Path(experiment_dir) / "truth" / "cells.csv" if experiment_dir is not None else None
+    truth = pd.read_csv(truth_path) if truth_path is not None and truth_path.is_file() else None
+    main = thr.groupby("cell_id", sort=True).head(1)
+    print("\nmain-mode thresholds (S-curve fit; straight line above threshold beside it):", file=out)
+    for r in main.itertuples():
+        text = (f"  {r.cell_id}: {r.threshold_nj:.4g} +- {r.threshold_err_nj:.2g} nJ, beta {r.beta:.3g}, "
+                f"straight line {r.linear_threshold_nj:.4g} nJ")
+        if r.threshold_fluence_j_cm2 == r.threshold_fluence_j_cm2:
+            text += f", threshold fluence {r.threshold_fluence_j_cm2 * 1e3:.3g} mJ/cm^2"
+        if truth is not None and r.cell_id in set(truth["cell_id"]):
+            t = truth.set_index("cell_id").loc[r.cell_id]
+            text += f"   (generator: {t['threshold_nj']:.4g} nJ, beta {t['beta']:.3g})"
+        print(text + ("" if r.fit_ok else f"  FIT NOT OK: {r.fit_message}"), file=out)
+    print("\n" + CAUTIONS, file=out)
+
+
+def handle_demo(args):
+    from .. import synth
+
+    writer, story = _SCENARIOS[args.scenario]
     exp_dir = args.out / "experiment"
     if not args.quiet:
-        print(f"generating the synthetic demo experiment in {exp_dir} (seed {args.seed}) ...")
-    manifest = write_fp_experiment(exp_dir, rng=args.seed)
+        print(f"generating the synthetic demo experiment ({story}) in {exp_dir} (seed {args.seed}) ...")
+    manifest = getattr(synth, writer)(exp_dir, rng=args.seed)
     result = _run(args, manifest, args.out / "run")
     if not args.quiet:
         _summary(result)
-        _demo_truth_check(args.out / "experiment", result)
+        if args.scenario == "pump":
+            _threshold_summary(result, args.out / "experiment")
+        else:
+            _demo_truth_check(args.out / "experiment", result)
     return EXIT_PARTIAL if result.n_failed else EXIT_OK

@@ -19,7 +19,8 @@ _MIN_SETTLED_FRAMES = 5
 CHANGE_RULE = (
     "A cell is judged twice: against its own baseline (self_changed, the per-cell rule) and against the "
     "control population (changed). Per-cell rule: the quantity is index_change when it is finite in most "
-    "lasing frames, otherwise relative_shift. Only lasing frames with a finite value are used. The baseline "
+    "lasing frames (for a bead: the change of the index around it), otherwise relative_shift. Only lasing "
+    "frames with a finite value are used. The baseline "
     "window holds the frames before perturbation_s (at least min_baseline_frames, default 5); the settled "
     "window holds the last settle_fraction (default 25 %, at least 5 frames) of the frames at or after "
     "perturbation_s. baseline_noise is 1.4826 times the median absolute deviation of the baseline values, never "
@@ -27,7 +28,8 @@ CHANGE_RULE = (
     "sqrt(s_b^2/n_b + s_s^2/n_s) with s the sample standard deviation of each window (floored by the median "
     "reported error), and change_z = change / baseline_noise. The cell is self_changed when |change_z| >= z_min "
     "(default 5) and |change| >= min_index_change (default 2e-4) or, for relative_shift, min_relative_shift "
-    "(default 1.5e-4). A cell seen only in emission images is judged the same way on pattern_baseline_corr "
+    "(default 1.5e-4); a processor may judge another series with its own smallest change (the sphere "
+    "processor with sphere.judge = diameter: diameter_change_um, sphere.min_diameter_change_um). A cell seen only in emission images is judged the same way on pattern_baseline_corr "
     "(its pattern's correlation with its mean pattern before perturbation_s) with min_pattern_change (default "
     "0.1). Against the controls: when the manifest names control conditions (experiment.control_condition) and "
     "at least 4 control cells have a finite flag feature x (flags.feature, default index_change, the change "
@@ -42,7 +44,8 @@ CHANGE_RULE = (
     "The onset of a changed cell is the first significant change point of its judged series at or after "
     "perturbation_s: exact penalised change points (PELT, squared-error cost, penalty 6 sigma^2 ln n, sigma the "
     "larger of the frame-to-frame and the baseline noise), the first whose step is at least 5 sigma and whose "
-    "level persists over the next 3 frames; onset_s is half-way between that frame and the frame before it and "
+    "level persists over the next 3 frames, moved back to the first of the run of same-direction change points "
+    "that leads to it (a gradual response); onset_s is half-way between that frame and the frame before it and "
     "onset_err_s combines the spread of the change location with the frame interval. Without a perturbation "
     "time, or with too few baseline or settled frames, the features are NaN, the cell is not changed and the "
     "note says why."
@@ -85,7 +88,7 @@ def _check_options(**opts):
 
 def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_index_change=2e-4,
                    min_relative_shift=1.5e-4, k_sigma=5.0, n_consecutive=3, settle_fraction=0.25,
-                   min_baseline_frames=5) -> dict:
+                   min_baseline_frames=5, quantity=None, quantity_err=None, min_change=None) -> dict:
     """Change, significance, onset and per-cell verdict of one cell.
 
     ``changed`` here is the per-cell rule of :data:`CHANGE_RULE` (``self_changed``
@@ -106,6 +109,10 @@ def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_in
         Mode tracks found for the cell (copied to the result).
     z_min, min_index_change, min_relative_shift, k_sigma, n_consecutive, settle_fraction, min_baseline_frames
         Options of the per-cell rule (:data:`CHANGE_RULE`) and of the threshold onset (above).
+    quantity, quantity_err, min_change : optional
+        Judge this column of ``cell_frames`` (error column ``quantity_err``, default
+        ``quantity + "_err"``) with smallest flagged change ``min_change`` instead of the
+        automatic choice (e.g. ``diameter_change_um`` of a bead).
 
     Returns
     -------
@@ -145,12 +152,20 @@ def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_in
 
     las = df[lasing]
     idx = las["index_change"].to_numpy(dtype=float)
-    if las.shape[0] and np.isfinite(idx).sum() * 2 > las.shape[0]:
+    q_err = quantity_err
+    if quantity is not None:
+        q_err = q_err or quantity + "_err"
+        if quantity not in df.columns or q_err not in df.columns or min_change is None:
+            raise InputError("a named series needs its column, its error column and min_change",
+                             field="quantity", expected="columns of cell_frames and min_change",
+                             found=f"{quantity!r}, {q_err!r}, min_change={min_change!r}")
+    elif las.shape[0] and np.isfinite(idx).sum() * 2 > las.shape[0]:
         quantity = "index_change"
     elif las.shape[0] and np.isfinite(las["relative_shift"].to_numpy(dtype=float)).any():
         quantity = "relative_shift"
     else:
         quantity = "index_change"
+    q_err = q_err or quantity + "_err"
     out["quantity"] = quantity
     if las.shape[0] == 0:
         out["note"] = "no lasing frames"
@@ -158,7 +173,7 @@ def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_in
 
     t = las["time_s"].to_numpy(dtype=float)
     q = las[quantity].to_numpy(dtype=float)
-    qe = las[quantity + "_err"].to_numpy(dtype=float)
+    qe = las[q_err].to_numpy(dtype=float)
     opl = las["optical_length_um"].to_numpy(dtype=float)
 
     if math.isnan(perturbation_s):
@@ -205,7 +220,8 @@ def summarize_cell(cell_frames, *, perturbation_s, n_tracks=0, z_min=5.0, min_in
         return out
     z = change / noise
     out["change_z"] = float(z)
-    min_change = min_index_change if quantity == "index_change" else min_relative_shift
+    if min_change is None:
+        min_change = min_index_change if quantity == "index_change" else min_relative_shift
     changed = bool(abs(z) >= z_min and abs(change) >= min_change)
     out["changed"] = changed
     if changed:

@@ -177,8 +177,10 @@ def changepoint_onset(time_s, values, *, start_s, noise=None, penalty_factor=6.0
     +1 or -1), and after which the level persists: the median of the
     ``n_persist`` values from b on also differs by that much, in the same
     direction, from the median of the ``n_persist`` values before b (a lone
-    outlier is not an onset). With the default ``min_size=1`` a gradual
-    response is located at its first frame. ``onset_s`` is half-way between
+    outlier is not an onset). A gradual response is a staircase of change
+    points: the onset moves back to the first of the run of same-direction
+    breakpoints at or after ``start_s`` that leads to b (with the default
+    ``min_size=1`` a gradual response is then located at its first frame). ``onset_s`` is half-way between
     the frame before b and frame b.
     ``onset_err_s`` combines the posterior spread of the change location
     (profile likelihood of one change between the neighbouring breakpoints) with
@@ -215,6 +217,12 @@ def changepoint_onset(time_s, values, *, start_s, noise=None, penalty_factor=6.0
         held = float(np.median(v[b:b + w])) - float(np.median(v[max(0, b - w):b]))
         if np.sign(held) != np.sign(step) or abs(held) < min_step_sigma * cp.noise:
             continue
+        # a gradual response is a staircase of change points: its onset is the first step of the
+        # run of same-direction steps (at or after start_s) that leads to the significant one
+        while j > 0 and t[cp.breakpoints[j - 1]] >= start_s and \
+                np.sign(cp.segment_means[j] - cp.segment_means[j - 1]) == np.sign(step):
+            j -= 1
+        b = int(cp.breakpoints[j])
         sd_frames = _location_sd(v, int(edges[j]), int(edges[j + 2]), int(b), int(min_size), cp.noise)
         dt = float(t[b] - t[b - 1])
         out["onset_s"] = float(t[b - 1] + 0.5 * dt)

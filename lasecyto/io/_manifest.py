@@ -10,11 +10,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..exceptions import InputError
+from ._cavity_spec import KINDS, parse_pump, parse_sphere
 from ._sidecar import default_sidecar_path
 
 __all__ = ["CellSpec", "DishSpec", "FieldSpec", "LampSpec", "Manifest", "missing_files", "read_manifest"]
 
-RESONATORS = ("fabry-perot",)
+RESONATORS = ("fabry-perot", "sphere")
 
 
 @dataclass(frozen=True)
@@ -87,6 +88,9 @@ class Manifest:
     fields: dict = field(default_factory=dict)
     control_conditions: tuple = ()
     classifier_model: Path | None = None
+    kind: str = "time-lapse"
+    sphere: dict | None = None
+    pump: dict | None = None
 
 
 def _join(root, relative):
@@ -249,6 +253,12 @@ def read_manifest(path) -> Manifest:
             p.add(where, "cell thicker than the mirror gap", f"<= experiment.gap_um ({gap_um:g})", _show(value))
 
     _thickness_fits(thickness, "experiment.cell_thickness_um")
+    kind = exp.get("kind", "time-lapse")
+    if kind not in KINDS:
+        p.add("experiment.kind", "unknown experiment kind", " or ".join(repr(k) for k in KINDS), _show(kind))
+        kind = "time-lapse"
+    sphere = parse_sphere(_table(doc, "sphere", p, "sphere"), p, required=resonator == "sphere")
+    pump = parse_pump(_table(doc, "pump", p, "pump"), p, required=kind == "pump-series")
     synthetic = exp.get("synthetic", False)
     if not isinstance(synthetic, bool):
         p.add("experiment.synthetic", "not a boolean", "true or false", _show(synthetic))
@@ -393,7 +403,8 @@ def read_manifest(path) -> Manifest:
                     description=description, lamp=lamp, dishes=dishes, cells=tuple(cells),
                     parameters=parameters, medium=medium, cell_thickness_um=thickness,
                     fields={k: v for k, v in fields.items() if v is not None},
-                    control_conditions=controls, classifier_model=model)
+                    control_conditions=controls, classifier_model=model, kind=kind, sphere=sphere,
+                    pump=pump)
 
 
 def missing_files(manifest: Manifest) -> list[tuple[str, Path]]:

@@ -34,7 +34,9 @@ class Sidecar:
 
     ``frame_times_s`` and ``pump_energy_nj`` are read-only arrays;
     ``pump_energy_nj`` holds one value per frame (a single number in the
-    file is broadcast) or is None.
+    file is broadcast) or is None.  ``frame_exposure_s`` (optional key, one
+    value per frame) is the exposure of each frame when they differ, e.g. a
+    pump series recorded with longer exposures at low pump; None otherwise.
     """
 
     path: Path
@@ -44,6 +46,7 @@ class Sidecar:
     camera: CameraModel
     wavelength: WavelengthAxis | None
     wavelength_guess: WavelengthAxis | None
+    frame_exposure_s: np.ndarray | None = None
 
 
 def default_sidecar_path(stack_path) -> Path:
@@ -150,6 +153,15 @@ def read_sidecar(path) -> Sidecar:
             pump = np.full(times.size, _number(pump, path, "pump_energy_nj", low=0.0, strict=False))
         pump = _ro(pump)
 
+    frame_exposure = doc.get("frame_exposure_s")
+    if frame_exposure is not None:
+        frame_exposure = _number_list(frame_exposure, path, "frame_exposure_s")
+        if (frame_exposure <= 0).any():
+            i = int(np.flatnonzero(frame_exposure <= 0)[0])
+            raise InputError("bad list element", path=path, field=f"frame_exposure_s[{i}]",
+                             expected="a finite number > 0", found=repr(float(frame_exposure[i])))
+        frame_exposure = _ro(frame_exposure)
+
     cam = doc.get("camera", {})
     if cam is None:
         cam = {}
@@ -168,7 +180,8 @@ def read_sidecar(path) -> Sidecar:
         block = doc.get(key)
         axes[key] = None if block is None else _axis(block, path, key)
     return Sidecar(path=path, frame_times_s=_ro(times), exposure_s=exposure, pump_energy_nj=pump,
-                   camera=camera, wavelength=axes["wavelength"], wavelength_guess=axes["wavelength_guess"])
+                   camera=camera, wavelength=axes["wavelength"], wavelength_guess=axes["wavelength_guess"],
+                   frame_exposure_s=frame_exposure)
 
 
 def check_sidecar(sidecar: Sidecar, stack) -> None:
@@ -188,6 +201,10 @@ def check_sidecar(sidecar: Sidecar, stack) -> None:
         raise InputError("pump energies do not match the stack", path=sidecar.path, field="pump_energy_nj",
                          expected=f"one number or {n} values (one per frame of {name})",
                          found=f"{len(sidecar.pump_energy_nj)} values")
+    if sidecar.frame_exposure_s is not None and len(sidecar.frame_exposure_s) != n:
+        raise InputError("frame exposures do not match the stack", path=sidecar.path, field="frame_exposure_s",
+                         expected=f"{n} values (one per frame of {name})",
+                         found=f"{len(sidecar.frame_exposure_s)} values")
     for key in ("wavelength", "wavelength_guess"):
         axis = getattr(sidecar, key)
         if axis is not None and axis.n_pixels is not None and axis.n_pixels != stack.n_pixels:

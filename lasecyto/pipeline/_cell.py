@@ -55,6 +55,9 @@ class CellJob:
     position_px: tuple | None = None
     roi_px: tuple | None = None
     field_cells: tuple = ()
+    kind: str = "time-lapse"
+    sphere: dict | None = None
+    pump: dict | None = None
 
 
 @dataclass
@@ -101,9 +104,8 @@ def _gap_medium(job):
                          found=repr(job.medium)) from None
 
 
-def _run_fabry_perot(job: CellJob) -> CellResult:
-    p = job.parameters
-    medium = _gap_medium(job)
+def cell_lines(job: CellJob):
+    """The lines stage of one cell: ``(lines, frame_times_s, n_frames, sidecar)``."""
     with read_stack(job.stack) as stack:
         sidecar = read_sidecar(job.sidecar)
         check_sidecar(sidecar, stack)
@@ -117,8 +119,15 @@ def _run_fabry_perot(job: CellJob) -> CellResult:
         else:
             r0, r1 = 0, stack.n_rows
         times = sidecar.frame_times_s
-        lines = stack_lines(stack, cam, axis, times, rows=(r0, r1), cell_id=job.cell_id, parameters=p)
-        n_frames = stack.n_frames
+        lines = stack_lines(stack, cam, axis, times, rows=(r0, r1), cell_id=job.cell_id,
+                            parameters=job.parameters)
+        return lines, times, stack.n_frames, sidecar
+
+
+def _run_fabry_perot(job: CellJob) -> CellResult:
+    p = job.parameters
+    medium = _gap_medium(job)
+    lines, times, n_frames, _ = cell_lines(job)
     gap = job.gap_um if np.isfinite(job.gap_um) else None
     tracked = track_cell(lines, p, medium=medium, gap_um=gap)
     for text in tracked.warnings:
@@ -147,15 +156,23 @@ def _run_fabry_perot(job: CellJob) -> CellResult:
                       tables={"lines": lines, "tracks": tracks, "cell_frames": frames_tab})
 
 
+from ._pump import run_pump_series  # noqa: E402  (the processors use the helpers above)
+from ._sphere import run_sphere  # noqa: E402
+
 #: per-item processing by resonator type (the manifest's ``experiment.resonator``)
-PROCESSORS = {"fabry-perot": _run_fabry_perot}
+PROCESSORS = {"fabry-perot": _run_fabry_perot, "sphere": run_sphere}
+#: per-item processing by experiment kind, ahead of the resonator (``experiment.kind``)
+KIND_PROCESSORS = {"pump-series": run_pump_series}
 
 
 def process_cell(job: CellJob) -> CellResult:
     """Process one cell; a failure is returned as a result, never raised."""
     t0 = time.perf_counter()
     try:
-        result = PROCESSORS[job.resonator](job) if job.stack is not None else run_pattern_cell(job)
+        if job.stack is None:
+            result = run_pattern_cell(job)
+        else:
+            result = (KIND_PROCESSORS.get(job.kind) or PROCESSORS[job.resonator])(job)
         result = complete_cell(job, result)
     except LasecytoError as exc:
         result = CellResult(job.cell_id, "failed", error=str(exc))

@@ -90,6 +90,24 @@ DEFAULT_PARAMETERS: dict[str, dict] = {
         "seed": 0,
         "anomaly": False,         # isolation-forest anomaly score against the controls
     },
+    "sphere": {                   # bead (whispering-gallery) resonators only
+        "max_radial_order": 2,    # radial orders 1..N considered in the mode identification
+        "wavelength_floor_nm": 0.001,  # systematic line error added in quadrature (calibration)
+        "assign_frames": 3,       # frames with most lines tried for the mode identification
+        "tolerance_nm": 0.02,     # largest distance of a later track from its predicted mode
+        "min_lines": 3,           # frames with fewer identified lines get no size/index fit
+        "reference_nm": 600.0,    # wavelength of the reported medium index
+        "judge": "medium_index",  # series the verdict judges: "medium_index" or "diameter"
+        "min_diameter_change_um": 0.005,  # with judge = "diameter": smallest change flagged
+    },
+    "threshold": {                # pump series only
+        "max_modes": 3,           # modes fitted per cell, by output at the highest pumps
+        "min_points": 6,          # a mode needs this many distinct pump energies
+        "linear_min_x": 2.0,      # straight line above threshold: from this many x threshold ...
+        "linear_max_x": 5.0,      # ... to this many
+        "output_floor": 0.02,     # relative error added in quadrature to every output
+        "resolved_factor": 1.1,   # a width above this x the instrument FWHM counts as resolved
+    },
 }
 
 

@@ -19,7 +19,8 @@ from .. import tables
 from .._version import __version__
 from ..calibration import reference_lines, solve_dispersion
 from ..exceptions import InputError, LasecytoError
-from ..io import file_sha256, missing_files, read_manifest, read_sidecar, read_stack, write_json, write_table
+from ..io import (atomic_path, file_sha256, missing_files, read_manifest, read_sidecar, read_stack, write_json,
+                  write_table)
 from ._cell import CellJob, CellResult, process_cell
 from ._experiment import finish_experiment
 from ._patterns import image_job_fields
@@ -74,6 +75,14 @@ def calibrate_lamp(lamp, parameters):
         "rms_nm": solution.rms_nm, "n_used": solution.n_used,
     }
     return solution, summary
+
+
+def _pump_safety(manifest):
+    """The cautions that go with every pump dose or fluence a pump-series run reports."""
+    if manifest.kind != "pump-series":
+        return None
+    from ..safety import CAUTIONS
+    return CAUTIONS
 
 
 def _versions():
@@ -206,7 +215,8 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
                             sidecar=c.sidecar and str(c.sidecar), rows=c.rows, gap_um=float(manifest.gap_um),
                             parameters=params, lamp_axis=lamp_axis, lamp_error=lamp_error,
                             resonator=manifest.resonator, medium=manifest.medium,
-                            cell_thickness_um=float(c.cell_thickness_um), **image_job_fields(manifest, c)))
+                            cell_thickness_um=float(c.cell_thickness_um), kind=manifest.kind,
+                            sphere=manifest.sphere, pump=manifest.pump, **image_job_fields(manifest, c)))
 
     bar = None
     if show_progress is None:
@@ -247,7 +257,8 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "versions": _versions(),
         "experiment": {"name": manifest.name, "manifest": str(manifest.path),
-                       "resonator": manifest.resonator, "gap_um": manifest.gap_um,
+                       "resonator": manifest.resonator, "kind": manifest.kind,
+                       "sphere": manifest.sphere, "pump": manifest.pump, "gap_um": manifest.gap_um,
                        "synthetic": manifest.synthetic, "description": manifest.description,
                        "n_cells": len(manifest.cells)},
         "wavelengths": "vacuum (converted from air with the "
@@ -255,6 +266,7 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         "parameters": params,
         "recipe": None if recipe is None else str(recipe),
         "change_rule": CHANGE_RULE,
+        "pump_safety": _pump_safety(manifest),
         "seeds": {"pipeline": "none: every stage is deterministic"},
         "workers": workers,
         "calibration": calib_summary,
@@ -266,6 +278,9 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
                           "csv": f"tables/{name}.csv"} for name, t in out_tables.items()},
     }
     write_json(record, out_dir / "run_record.json")
+    if record["pump_safety"] is not None:  # beside the tables that show pump energies and fluences
+        with atomic_path(out_dir / "pump_safety.txt") as tmp:
+            tmp.write_text(record["pump_safety"] + "\n", encoding="utf-8")
 
     report = None
     if write_report:

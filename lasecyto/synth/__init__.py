@@ -2,11 +2,15 @@
 
 Everything this subpackage writes is synthetic.  It keeps its own physics (water
 dispersion of Daimon & Masumura 2007, Ciddor 1996 standard air, exact Fabry-Perot
-resonances, pixel-integrated line shapes, camera noise) and imports none of the
+resonances, complex-root bead resonances, rate-equation pump series, pixel-integrated
+line shapes, camera noise) and imports none of the
 analysis subpackages it is used to test.
 
 write_fp_experiment   a whole experiment: manifest, stacks, sidecars, lamp, camera images and truth/
 write_pattern_experiment  an image-only experiment (emission-pattern stacks, no spectra) and truth/
+write_sphere_experiment  dye-doped bead (whispering-gallery) lasers in cells: a medium-shift time-lapse
+write_pump_experiment    a pump-threshold series of bead lasers (rate-equation S-curves, known threshold)
+wgm_resonances        exact (complex-root) bead resonances and radiation-limited Q, own solver
 render_lamp_frame     one neon (or any line-lamp) frame through a known wavelength axis
 neon_lines_air_nm     Ne I air wavelengths 530-725 nm (NIST ASD)
 neon_relative_intensities  their NIST relative intensities
@@ -16,6 +20,9 @@ water_index_daimon    refractive index of water at 20 degC
 """
 
 from ._experiment import write_fp_experiment, write_pattern_experiment
+from ._pump_scenario import write_pump_experiment
+from ._sphere_scenario import write_sphere_experiment
+from ._wgm import wgm_resonances
 from ._media import water_index_daimon
 from ._modes import fp_mode_wavelengths
 from ._neon import neon_lines_air_nm, neon_relative_intensities
@@ -25,6 +32,9 @@ from ._trajectories import TRAJECTORY_SCENARIO, mode_trajectories
 __all__ = [
     "write_fp_experiment",
     "write_pattern_experiment",
+    "write_sphere_experiment",
+    "write_pump_experiment",
+    "wgm_resonances",
     "render_lamp_frame",
     "neon_lines_air_nm",
     "neon_relative_intensities",

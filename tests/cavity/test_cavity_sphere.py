@@ -7,8 +7,8 @@ import pytest
 
 from lasecyto.cavity.media import get_medium
 from lasecyto.cavity.sphere import (
-    asymptotic_size_parameter, assign_modes, exact_size_parameter, fit_sphere,
-    resonance_wavelengths)
+    asymptotic_size_parameter, assign_modes, complex_size_parameter, exact_size_parameter, fit_sphere,
+    fit_sphere_modes, mode_wavelengths, resonance_wavelengths)
 from lasecyto.exceptions import InputError
 
 # check-values.md section 6, worked example A: D = 10 um, n_s = 1.59, n_m = 1.333, first radial
@@ -30,7 +30,7 @@ def test_exact_size_parameters_example_a(pol):
     x = exact_size_parameter(L_A, M_A, polarization=pol)
     np.testing.assert_allclose(x, X_EXACT[pol], rtol=0, atol=1e-6)
     # "lambda exact" column (quoted to 1e-4 nm)
-    lam = resonance_wavelengths(10.0, 1.59, 1.333, polarization=pol, l=L_A)
+    lam = resonance_wavelengths(10.0, 1.59, 1.333, polarization=pol, l=L_A, root="real")
     np.testing.assert_allclose(lam, LAMBDA_EXACT[pol], rtol=0, atol=1e-4)
 
 
@@ -59,8 +59,8 @@ def test_dispersive_example_b():
     # check-values.md section 6 example B (PS Sultanova 2009 in water Daimon & Masumura 2007,
     # D = 10 um, self-consistent); tol 1e-3 nm
     ps, water = get_medium("ps-sultanova"), get_medium("water-daimon")
-    te = resonance_wavelengths(10.0, ps, water, polarization="TE", l=L_A)
-    tm = resonance_wavelengths(10.0, ps, water, polarization="TM", l=L_A)
+    te = resonance_wavelengths(10.0, ps, water, polarization="TE", l=L_A, root="real")
+    tm = resonance_wavelengths(10.0, ps, water, polarization="TM", l=L_A, root="real")
     np.testing.assert_allclose(te, [620.7017, 613.0322, 605.5625, 598.2848, 591.1919, 584.2770],
                                rtol=0, atol=1e-3)
     np.testing.assert_allclose(tm, [617.6764, 610.0663, 602.6542, 595.4325, 588.3942, 581.5323],
@@ -70,7 +70,8 @@ def test_dispersive_example_b():
 def test_assign_modes_example_a():
     # check-values.md section 6 test use: (pol, l) of the 12 lines, diameter within 1 nm
     order = np.array([3, 9, 0, 11, 5, 7, 1, 10, 2, 6, 8, 4])  # shuffled input
-    a = assign_modes(LINES_A[order], n_sphere=1.59, n_medium=1.333, diameter_range_um=(8.0, 12.0))
+    a = assign_modes(LINES_A[order], n_sphere=1.59, n_medium=1.333, diameter_range_um=(8.0, 12.0),
+                     root="real")
     assert a.ok, a.message
     expected_pol = np.array(["TE"] * 6 + ["TM"] * 6)[order]
     expected_l = np.concatenate([L_A, L_A])[order]
@@ -171,3 +172,68 @@ def test_bad_sphere_inputs():
         resonance_wavelengths(-1.0, 1.59, 1.333, polarization="TE", l=75)
     with pytest.raises(InputError, match="low < high"):
         assign_modes([600.0, 605.0], n_sphere=1.59, n_medium=1.333, diameter_range_um=(12, 8))
+
+
+# check-values.md section 6 example A, "lambda complex root (nm)" and "Q_rad" columns (computed
+# there from the complex roots of the outgoing-wave equations)
+LAMBDA_COMPLEX = {"TE": [621.2463, 613.3273, 605.6106, 598.0885, 590.7537, 583.5992],
+                  "TM": [618.1163, 610.2620, 602.6080, 595.1468, 587.8712, 580.7742]}
+Q_RAD = {"TE": [2.48e3, 2.74e3, 3.02e3, 3.33e3, 3.68e3, 4.07e3],
+         "TM": [1.91e3, 2.10e3, 2.32e3, 2.56e3, 2.83e3, 3.12e3]}
+LINES_COMPLEX = np.array(LAMBDA_COMPLEX["TE"] + LAMBDA_COMPLEX["TM"])
+
+
+@pytest.mark.parametrize("pol", ["TE", "TM"])
+def test_complex_roots_example_a(pol):
+    # check-values.md section 6 example A: complex-root wavelengths (quoted to 1e-4 nm) and
+    # radiation-limited Q = x_r / (2 x_i) (quoted to 3 digits)
+    x = complex_size_parameter(L_A, M_A, polarization=pol)
+    np.testing.assert_allclose(np.pi * 1.333 * 10e3 / x.real, LAMBDA_COMPLEX[pol], rtol=0, atol=1e-4)
+    np.testing.assert_allclose(x.real / (2 * np.abs(x.imag)), Q_RAD[pol], rtol=6e-3)
+    lam = resonance_wavelengths(10.0, 1.59, 1.333, polarization=pol, l=L_A)  # default: complex
+    np.testing.assert_allclose(lam, LAMBDA_COMPLEX[pol], rtol=0, atol=1e-4)
+
+
+def test_fixed_assignment_fit_from_few_lines():
+    # check-values.md section 6: D = 10.000 um (tol 1 nm) and n_m = 1.333 (tol 1e-4) from the
+    # complex-root lines, mode identity given, from all 12 lines and from 3 (TE74, TM74, TM79)
+    pols = ["TE"] * 6 + ["TM"] * 6
+    ls = np.concatenate([L_A, L_A])
+    for idx in (np.arange(12), np.array([0, 6, 11]), np.array([2, 3, 8])):
+        fit = fit_sphere_modes(LINES_COMPLEX[idx], 5e-5, polarization=[pols[i] for i in idx], l=ls[idx],
+                               radial_order=1, n_sphere=1.59, n_medium_guess=1.34,
+                               diameter_range_um=(8.0, 12.0))
+        assert fit.ok, fit.message
+        assert fit.diameter_um == pytest.approx(10.0, abs=1e-3)
+        assert fit.n_medium == pytest.approx(1.333, abs=1e-4)
+        assert 0 < fit.n_medium_err < 1e-4
+    # the interpolated model equals the exact self-consistent resonances (dispersive media)
+    ps, water = get_medium("ps-ma"), get_medium("water-daimon")
+    exact = [resonance_wavelengths(12.0, ps, water, polarization=p, l=li) for p, li in
+             (("TE", 90), ("TM", 89), ("TE", 88))]
+    fit = fit_sphere_modes(exact, 1e-6, polarization=["TE", "TM", "TE"], l=[90, 89, 88], radial_order=1,
+                           n_sphere=ps, n_medium_guess=water, diameter_range_um=(10.0, 14.0))
+    assert fit.ok, fit.message
+    np.testing.assert_allclose(fit.assignment.predicted_nm, exact, rtol=0, atol=1e-6)
+    assert fit.diameter_um == pytest.approx(12.0, abs=1e-6)
+
+
+def test_wrong_identity_is_rejected():
+    fit = fit_sphere_modes(LINES_COMPLEX[[0, 1, 6]], 1e-4, polarization=["TE", "TE", "TE"],
+                           l=[74, 75, 76], radial_order=1, n_sphere=1.59, n_medium_guess=1.34,
+                           diameter_range_um=(8.0, 12.0))
+    assert not fit.ok and "do not fit these modes" in fit.message
+    assert math.isnan(fit.diameter_um)
+    with pytest.raises(InputError, match="one mode identity per line"):
+        fit_sphere_modes(LINES_COMPLEX[:3], polarization=["TE", "TM"], l=[74, 75, 76], radial_order=1,
+                         n_sphere=1.59, n_medium_guess=1.34)
+    with pytest.raises(InputError, match="same mode identity"):
+        fit_sphere_modes(LINES_COMPLEX[:3], polarization=["TE"] * 3, l=[74, 74, 76], radial_order=1,
+                         n_sphere=1.59, n_medium_guess=1.34)
+
+
+def test_mode_table_lists_the_resonances():
+    table = mode_wavelengths(10.0, 1.59, 1.333, wavelength_range_nm=(580.0, 622.0))
+    assert len(table["l"]) == 12
+    np.testing.assert_allclose(np.sort(table["wavelength_nm"]), np.sort(LINES_COMPLEX), atol=1e-4)
+    assert set(zip(table["polarization"], table["l"])) == {(p, int(li)) for p in ("TE", "TM") for li in L_A}

@@ -87,12 +87,12 @@ def test_missing_files_listed(tmp_path):
 
 
 def test_two_problems_reported_at_once(tmp_path):
-    text = GOOD.replace('resonator = "fabry-perot"', 'resonator = "sphere"').replace('dish = "B"\nstack', 'dish = "Z"\nstack')
+    text = GOOD.replace('resonator = "fabry-perot"', 'resonator = "ring"').replace('dish = "B"\nstack', 'dish = "Z"\nstack')
     with pytest.raises(InputError) as err:
         read_manifest(_manifest(tmp_path, text))
     msg = str(err.value)
     assert "\n" not in msg and "experiment.toml" in msg and "2 problems" in msg
-    assert "experiment.resonator: unsupported resonator (expected 'fabry-perot', found 'sphere')" in msg
+    assert "experiment.resonator: unsupported resonator (expected 'fabry-perot' or 'sphere', found 'ring')" in msg
     assert "cells[1].dish: unknown dish (expected one of ['A', 'B'], found 'Z')" in msg
     assert msg.count("; ") == 1
 

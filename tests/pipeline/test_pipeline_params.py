@@ -7,6 +7,7 @@ from lasecyto.exceptions import InputError
 from lasecyto.pipeline import DEFAULT_PARAMETERS, load_recipe, resolve_parameters
 
 RECIPE = Path(__file__).resolve().parents[2] / "pipelines" / "fabry_perot_timelapse.toml"
+RECIPES = sorted(RECIPE.parent.glob("*.toml"))
 
 
 def test_shipped_recipe_equals_the_defaults():
@@ -14,6 +15,22 @@ def test_shipped_recipe_equals_the_defaults():
     with open(RECIPE, "rb") as fh:
         recipe = tomllib.load(fh)
     assert recipe == DEFAULT_PARAMETERS
+
+
+@pytest.mark.parametrize("path", RECIPES, ids=lambda p: p.name)
+def test_every_recipe_is_valid_complete_per_stage_and_commented(path):
+    # a recipe of an experiment type holds the stages that type uses: every stage it names lists
+    # every key of that stage, the values resolve without a problem, and every key line has a comment
+    assert {p.name for p in RECIPES} >= {"fabry_perot_timelapse.toml", "sphere_timelapse.toml",
+                                         "pump_threshold_series.toml", "pattern_timelapse.toml"}
+    with open(path, "rb") as fh:
+        recipe = tomllib.load(fh)
+    for stage, values in recipe.items():
+        assert set(values) == set(DEFAULT_PARAMETERS[stage]), f"{path.name}: [{stage}] is incomplete"
+    resolve_parameters(recipe, source=path.name)
+    for line in path.read_text().splitlines():
+        if "=" in line.split("#", 1)[0] and not line.lstrip().startswith(("#", "[")):
+            assert "#" in line.split("=", 1)[1], f"{path.name}: no comment on '{line}'"
 
 
 def test_overrides_apply_in_order():
