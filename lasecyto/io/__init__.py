@@ -9,6 +9,7 @@ expected and what was found, and every file is written atomically.
 from ._manifest import CellSpec, DishSpec, LampSpec, Manifest, missing_files, read_manifest
 from ._sidecar import CameraModel, Sidecar, check_sidecar, default_sidecar_path, read_sidecar
 from ._stack import FORMATS, SpectralStack, read_stack
+from ._parts import read_table_parts, write_part, write_table_parts
 from ._write import atomic_path, file_sha256, read_table, write_json, write_table
 
 __all__ = [
@@ -29,6 +30,9 @@ __all__ = [
     "read_sidecar",
     "read_stack",
     "read_table",
+    "read_table_parts",
     "write_json",
+    "write_part",
     "write_table",
+    "write_table_parts",
 ]

@@ -38,7 +38,7 @@ def _fsync_dir(directory):
 
 
 @contextlib.contextmanager
-def atomic_path(path):
+def atomic_path(path, *, fsync=True):
     """Write a file atomically through a temporary file in the same directory.
 
     Yields the path of an empty temporary file beside ``path``.  When the
@@ -50,6 +50,11 @@ def atomic_path(path):
     ----------
     path : str or os.PathLike
         Final destination.  Its directory must exist.
+    fsync : bool
+        Flush the file and its directory entry to disk (default).  Without
+        it the rename is still atomic for other processes and survives the
+        writer being killed, but a power cut may leave an empty or short file
+        (for files whose readers check them, such as per-item results).
 
     Examples
     --------
@@ -64,14 +69,16 @@ def atomic_path(path):
     os.close(fd)
     try:
         yield tmp
-        with open(tmp, "r+b") as fh:
-            os.fsync(fh.fileno())
+        if fsync:
+            with open(tmp, "r+b") as fh:
+                os.fsync(fh.fileno())
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
-    _fsync_dir(directory)
+    if fsync:
+        _fsync_dir(directory)
 
 
 def file_sha256(path) -> str:
@@ -109,8 +116,10 @@ def _jsonable(obj, where):
                      found=type(obj).__name__)
 
 
-def write_json(obj, path) -> Path:
+def write_json(obj, path, *, fsync=True) -> Path:
     """Write ``obj`` as JSON atomically (indent 2, sorted keys, NaN written as null).
+
+    ``fsync`` as in :func:`atomic_path`.
 
     Returns
     -------
@@ -119,7 +128,7 @@ def write_json(obj, path) -> Path:
     """
     path = Path(path)
     text = json.dumps(_jsonable(obj, "$"), indent=2, sort_keys=True, allow_nan=False) + "\n"
-    with atomic_path(path) as tmp:
+    with atomic_path(path, fsync=fsync) as tmp:
         tmp.write_text(text, encoding="utf-8")
     return path
 

@@ -6,6 +6,7 @@ resonances, pixel-integrated line shapes, camera noise) and imports none of the
 analysis subpackages it is used to test.
 
 write_fp_experiment   a whole experiment: manifest, stacks, sidecars, lamp and truth/
+tile_experiment       a large experiment reusing the stacks of a few generated cells
 render_lamp_frame     one neon (or any line-lamp) frame through a known wavelength axis
 neon_lines_air_nm     Ne I air wavelengths 530-725 nm (NIST ASD)
 neon_relative_intensities  their NIST relative intensities
@@ -18,9 +19,11 @@ from ._media import water_index_daimon
 from ._modes import fp_mode_wavelengths
 from ._neon import neon_lines_air_nm, neon_relative_intensities
 from ._render import render_lamp_frame
+from ._tile import tile_experiment
 
 __all__ = [
     "write_fp_experiment",
+    "tile_experiment",
     "render_lamp_frame",
     "neon_lines_air_nm",
     "neon_relative_intensities",
