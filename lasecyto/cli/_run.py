@@ -2,19 +2,45 @@
 
 from __future__ import annotations
 
+import argparse
 import sys
 from pathlib import Path
 
-from ._common import EXIT_OK, EXIT_PARTIAL
+from ._common import EXIT_OK, EXIT_PARTIAL, EXIT_USAGE
+
+
+def _positive_int(text):
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, found {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, found {text!r}")
+    return value
 
 
 def _add_run_options(p):
-    p.add_argument("--workers", type=int, default=1, metavar="N",
-                   help="worker processes (default 1; each opens its own files)")
-    p.add_argument("--recipe", type=Path, default=None, metavar="FILE",
-                   help="recipe of stage parameters (TOML); the manifest's [parameters] override it")
+    p.add_argument("--workers", type=_positive_int, default=1, metavar="N",
+                   help="local worker processes (default 1 = serial; each opens its own files; a pool is "
+                        "started only when the batch is large enough to pay for it)")
+    p.add_argument("--recipe", default=None, metavar="NAME|FILE",
+                   help="recipe of stage parameters: a TOML file or a built-in name such as "
+                        "fabry_perot_timelapse; wins over the manifest's [experiment] recipe; the "
+                        "manifest's [parameters] override it")
+    p.add_argument("--resume", action="store_true",
+                   help="keep the finished items of an earlier run in the same directory whose inputs, "
+                        "parameters and package version are unchanged; recompute the others")
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="run the items on a Dask distributed cluster at ADDRESS "
+                            "(e.g. tcp://10.0.0.5:8786; needs lasecyto[dask])")
+    where.add_argument("--scheduler-file", type=Path, default=None, metavar="FILE",
+                       help="run the items on the Dask cluster described by FILE (written by the scheduler)")
     p.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
     p.add_argument("--no-report", action="store_true", help="do not write report.html")
+    p.add_argument("--no-csv", action="store_true",
+                   help="write the tables as Parquet only (for very large runs: the CSV of the lines "
+                        "table is several GB and slow to write)")
 
 
 def register(sub):
@@ -38,7 +64,8 @@ def register(sub):
     demo.set_defaults(handler=handle_demo)
 
 
-def _summary(result, out=sys.stdout):
+def _summary(result, out=None):
+    out = sys.stdout if out is None else out
     cells = result.tables["cells"]
     print(f"\ntables:     {result.out_dir / 'tables'}  (lines, tracks, cell_frames, cells; .parquet and .csv)",
           file=out)
@@ -55,14 +82,18 @@ def _summary(result, out=sys.stdout):
             extra = f"   median change of flagged cells {med:+.2e}" if k else ""
             print(f"  {cond:<{width}}  {k:>3} of {n:>3} changed{extra}", file=out)
     failed = [it for it in result.record["items"] if it["status"] != "ok"]
+    n_resumed = result.record.get("n_resumed", 0)
+    if n_resumed:
+        print(f"\n{n_resumed} item(s) kept from the earlier run in this directory (--resume)", file=out)
     if failed:
         print(f"\n{len(failed)} item(s) failed:", file=out)
         for it in failed:
             print(f"  {it['item']}: {it['error']}", file=out)
 
 
-def _demo_truth_check(experiment_dir, result, out=sys.stdout):
+def _demo_truth_check(experiment_dir, result, out=None):
     """Compare the verdicts with the generator's truth (synthetic data only)."""
+    out = sys.stdout if out is None else out
     import pandas as pd
 
     truth_path = Path(experiment_dir) / "truth" / "cells.csv"
@@ -85,10 +116,22 @@ def _run(args, manifest, run_dir):
 
     return run_experiment(manifest, run_dir, workers=args.workers, recipe=args.recipe,
                           show_progress=False if args.quiet else None,
-                          write_report=not args.no_report, command=args.command_line)
+                          write_report=not args.no_report, command=args.command_line,
+                          resume=args.resume, scheduler=args.scheduler, scheduler_file=args.scheduler_file,
+                          csv=not args.no_csv)
+
+
+def _usage_problem(args):
+    if (args.scheduler is not None or args.scheduler_file is not None) and args.workers != 1:
+        return "--workers applies to the local engine; with --scheduler the cluster's workers run the items"
+    return None
 
 
 def handle_run(args):
+    problem = _usage_problem(args)
+    if problem:
+        print(f"lasecyto run: error: {problem}", file=sys.stderr)
+        return EXIT_USAGE
     result = _run(args, args.manifest, args.out)
     if not args.quiet:
         _summary(result)
@@ -98,6 +141,10 @@ def handle_run(args):
 def handle_demo(args):
     from ..synth import write_fp_experiment
 
+    problem = _usage_problem(args)
+    if problem:
+        print(f"lasecyto demo: error: {problem}", file=sys.stderr)
+        return EXIT_USAGE
     exp_dir = args.out / "experiment"
     if not args.quiet:
         print(f"generating the synthetic demo experiment in {exp_dir} (seed {args.seed}) ...")

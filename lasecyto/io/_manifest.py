@@ -63,6 +63,7 @@ class Manifest:
     dishes: dict = field(default_factory=dict)
     cells: tuple = ()
     parameters: dict = field(default_factory=dict)
+    recipe: str | None = None  # [experiment] recipe: a path relative to the manifest or a built-in name
 
 
 def _join(root, relative):
@@ -183,6 +184,7 @@ def read_manifest(path) -> Manifest:
     if not isinstance(description, str):
         p.add("experiment.description", "not a string", "a string", _show(description))
         description = ""
+    recipe = p.text(exp, "recipe", "experiment", required=False)
 
     lamp = None
     lamp_doc = _table(doc, "lamp", p, "lamp")
@@ -254,7 +256,7 @@ def read_manifest(path) -> Manifest:
         raise InputError(f"{n} problem{'s' if n > 1 else ''} in the manifest: " + "; ".join(p.items), path=path)
     return Manifest(path=path, root=root, name=name, resonator=resonator, gap_um=gap_um, synthetic=synthetic,
                     description=description, lamp=lamp, dishes=dishes, cells=tuple(cells),
-                    parameters=parameters)
+                    parameters=parameters, recipe=recipe)
 
 
 def missing_files(manifest: Manifest) -> list[tuple[str, Path]]:

@@ -118,21 +118,21 @@ def read_table_parts(paths, *, name: str) -> pd.DataFrame:
     return validate(arrow.to_pandas(), name)
 
 
-def write_table_parts(paths, path_stem, *, name: str) -> tuple[Path, Path, int]:
+def write_table_parts(paths, path_stem, *, name: str, csv: bool = True) -> tuple[Path, Path | None, int]:
     """Stream parts of table ``name`` (in the given order) into one Parquet and one CSV file.
 
     The files are those :func:`write_table` writes (same names, same CSV
-    conventions), each written atomically; memory is bounded by the
-    largest part.
+    text), each written atomically; memory is bounded by the largest part.
+    ``csv=False`` writes the Parquet file only (and removes an old CSV file).
 
     Returns
     -------
-    (pathlib.Path, pathlib.Path, int)
-        The Parquet path, the CSV path and the number of rows.
+    (pathlib.Path, pathlib.Path or None, int)
+        The Parquet path, the CSV path (None without CSV) and the number of rows.
     """
     paths = _nonempty(paths)
     if not paths:
-        pq_path, csv_path = write_table(empty(name), path_stem, name=name)
+        pq_path, csv_path = write_table(empty(name), path_stem, name=name, csv=csv)
         return pq_path, csv_path, 0
     schema = _union_schema(paths, name)
     stem = _stem(path_stem)
@@ -140,13 +140,23 @@ def write_table_parts(paths, path_stem, *, name: str) -> tuple[Path, Path, int]:
     pq_path = stem.with_name(stem.name + ".parquet")
     csv_path = stem.with_name(stem.name + ".csv")
     rows = 0
-    with atomic_path(pq_path) as tmp_pq, atomic_path(csv_path) as tmp_csv:
-        with contextlib.closing(pq.ParquetWriter(tmp_pq, schema)) as writer, \
-                open(tmp_csv, "w", encoding="utf-8", newline="") as fh:
-            for i, path in enumerate(paths):
-                arrow = _aligned(path, schema, name)
-                df = validate(arrow.to_pandas(), name, path=path)
-                writer.write_table(arrow)
+    with contextlib.ExitStack() as stack:
+        # closed in reverse order: CSV file, its rename, Parquet writer, its rename
+        tmp_pq = stack.enter_context(atomic_path(pq_path))
+        writer = stack.enter_context(contextlib.closing(pq.ParquetWriter(tmp_pq, schema)))
+        fh = None
+        if csv:
+            tmp_csv = stack.enter_context(atomic_path(csv_path))
+            fh = stack.enter_context(open(tmp_csv, "w", encoding="utf-8", newline=""))
+        for i, path in enumerate(paths):
+            arrow = _aligned(path, schema, name)
+            df = validate(arrow.to_pandas(), name, path=path)
+            writer.write_table(arrow)
+            if fh is not None:
                 df.to_csv(fh, index=False, header=i == 0, na_rep=_NAN_TEXT, lineterminator="\n")
-                rows += len(df)
+            rows += len(df)
+    if not csv:
+        with contextlib.suppress(FileNotFoundError):
+            csv_path.unlink()
+        csv_path = None
     return pq_path, csv_path, rows

@@ -138,7 +138,7 @@ def _stem(path_stem):
     return p.with_suffix("") if p.suffix.lower() in _TABLE_SUFFIXES else p
 
 
-def write_table(table: pd.DataFrame, path_stem, *, name: str) -> tuple[Path, Path]:
+def write_table(table: pd.DataFrame, path_stem, *, name: str, csv: bool = True) -> tuple[Path, Path | None]:
     """Validate a table against its schema and write it as Parquet and CSV.
 
     Parameters
@@ -149,11 +149,15 @@ def write_table(table: pd.DataFrame, path_stem, *, name: str) -> tuple[Path, Pat
         dropped).  Missing parent directories are created.
     name : str
         Schema name in :data:`lasecyto.tables.SCHEMAS`.
+    csv : bool
+        Also write the CSV file (default).  When False, a CSV file of the
+        same name left by an earlier write is removed, so the two never disagree.
 
     Returns
     -------
-    (pathlib.Path, pathlib.Path)
-        The Parquet and CSV paths.  Each file is written atomically.
+    (pathlib.Path, pathlib.Path or None)
+        The Parquet and CSV paths (None when no CSV was written).  Each file
+        is written atomically.
     """
     df = validate(table, name)
     stem = _stem(path_stem)
@@ -162,6 +166,10 @@ def write_table(table: pd.DataFrame, path_stem, *, name: str) -> tuple[Path, Pat
     csv_path = stem.with_name(stem.name + ".csv")
     with atomic_path(pq_path) as tmp:
         df.to_parquet(tmp, engine="pyarrow", index=False)
+    if not csv:
+        with contextlib.suppress(FileNotFoundError):
+            csv_path.unlink()
+        return pq_path, None
     with atomic_path(csv_path) as tmp:
         df.to_csv(tmp, index=False, na_rep=_NAN_TEXT, lineterminator="\n")
     return pq_path, csv_path
