@@ -85,9 +85,14 @@ def test_local_pool_and_dask_give_identical_tables(small_experiment, serial_run,
     _assert_same_tables(serial_run, pool)
 
     distributed = pytest.importorskip("distributed")
+    scheduler_file = tmp_path / "scheduler.json"
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False, protocol="tcp",
-                                  host="127.0.0.1", dashboard_address="127.0.0.1:0") as cluster:
+                                  host="127.0.0.1", dashboard_address="127.0.0.1:0",
+                                  scheduler_kwargs={"scheduler_file": str(scheduler_file)}) as cluster:
         dask = _run(small_experiment, tmp_path / "dask", scheduler=cluster.scheduler_address)
+        # the same cluster reached through its scheduler file
+        by_file = DaskEngine(scheduler_file=scheduler_file)
+        assert sorted((o.index, o.result) for o in by_file.run(abs, [-3, -4])) == [(0, 3), (1, 4)]
     assert dask.record["engine"]["kind"] == "dask"
     assert dask.record["engine"]["cluster_workers"] == 2
     _assert_same_tables(serial_run, dask)
