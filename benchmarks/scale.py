@@ -16,7 +16,9 @@ RUN --workers N --quiet --no-report``.  Printed per size:
 
 * ``wall_s``: the child's wall time (interpreter start and imports included);
 * ``run_s``: the pipeline's own time (``elapsed_s`` of the run record);
-* time per 1e5 spectra from both, and its ratio to the smallest size (the baseline,
+* ``cpu_s``: CPU seconds (user + system) of the child and all its worker processes
+  (from ``wait4``), which other jobs on a shared machine disturb much less than wall time;
+* time per 1e5 spectra from each, and its ratio to the smallest size (the baseline,
   same data, same run): the acceptance is a ratio within 1.3 up to 1e6 spectra;
 * ``peak_MB``: the peak of the summed resident memory (RSS) of the child and all its
   descendants (worker processes), sampled every 50 ms; the acceptance is < 2000 MB at
@@ -83,7 +85,7 @@ def _tree_rss_bytes(pid):
 
 
 def run_measured(cmd, *, interval_s=0.05):
-    """Run ``cmd``; return (exit code, wall s, peak tree RSS bytes, main process peak RSS bytes)."""
+    """Run ``cmd``; return (exit code, wall s, CPU s of the tree, peak tree RSS bytes, main peak RSS bytes)."""
     t0 = time.perf_counter()
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     peak = [0]
@@ -105,7 +107,8 @@ def run_measured(cmd, *, interval_s=0.05):
     proc.stderr.close()
     if proc.returncode not in (0, 3):
         sys.stderr.write(err)
-    return proc.returncode, wall, peak[0], usage.ru_maxrss * 1024
+    # on Linux the rusage of a reaped child includes its own reaped children (the workers)
+    return proc.returncode, wall, usage.ru_utime + usage.ru_stime, peak[0], usage.ru_maxrss * 1024
 
 
 def main(argv=None):
@@ -132,11 +135,11 @@ def main(argv=None):
               f"(synthetic; tiled to each size)")
         print(f"workers {args.workers}; CSV {'off' if args.no_csv else 'on'}; python {sys.version.split()[0]}; "
               f"{os.cpu_count()} CPUs\n")
-        header = (f"{'spectra':>9} {'cells':>6} {'wall_s':>9} {'run_s':>9} {'wall/1e5':>9} {'run/1e5':>9} "
-                  f"{'ratio_wall':>10} {'ratio_run':>9} {'peak_MB':>8} {'main_peak_MB':>12} "
-                  f"{'lines_rows':>11} {'failed':>6}")
+        header = (f"{'spectra':>9} {'cells':>6} {'wall_s':>8} {'run_s':>8} {'cpu_s':>8} {'wall/1e5':>9} "
+                  f"{'run/1e5':>8} {'cpu/1e5':>8} {'ratio_run':>9} {'ratio_cpu':>9} {'peak_MB':>8} "
+                  f"{'main_peak_MB':>12} {'lines_rows':>10} {'failed':>6}")
         print(header)
-        base_wall = base_run = None
+        base_run = base_cpu = None
         for size in sizes:
             n_cells = max(1, round(size / fpc))
             n_spectra = n_cells * fpc
@@ -144,19 +147,19 @@ def main(argv=None):
             out = tmp / f"run-{size}"
             cmd = [sys.executable, "-m", "lasecyto", "run", str(manifest), "--out", str(out),
                    "--workers", str(args.workers), "--quiet", "--no-report"] + (["--no-csv"] if args.no_csv else [])
-            code, wall, peak, main_peak = run_measured(cmd)
+            code, wall, cpu, peak, main_peak = run_measured(cmd)
             if code not in (0, 3):
                 print(f"{n_spectra:>9} run failed with exit status {code}")
                 continue
             record = json.loads((out / "run_record.json").read_text())
             run_s = record["elapsed_s"]
-            per_wall, per_run = wall / n_spectra * 1e5, run_s / n_spectra * 1e5
-            if base_wall is None:
-                base_wall, base_run = per_wall, per_run
-            print(f"{n_spectra:>9} {n_cells:>6} {wall:>9.1f} {run_s:>9.1f} {per_wall:>9.1f} {per_run:>9.1f} "
-                  f"{per_wall / base_wall:>10.2f} {per_run / base_run:>9.2f} {peak / 1e6:>8.0f} "
-                  f"{main_peak / 1e6:>12.0f} {record['tables']['lines']['rows']:>11} {record['n_failed']:>6}",
-                  flush=True)
+            per_wall, per_run, per_cpu = (x / n_spectra * 1e5 for x in (wall, run_s, cpu))
+            if base_run is None:
+                base_run, base_cpu = per_run, per_cpu
+            print(f"{n_spectra:>9} {n_cells:>6} {wall:>8.1f} {run_s:>8.1f} {cpu:>8.1f} {per_wall:>9.1f} "
+                  f"{per_run:>8.1f} {per_cpu:>8.1f} {per_run / base_run:>9.2f} {per_cpu / base_cpu:>9.2f} "
+                  f"{peak / 1e6:>8.0f} {main_peak / 1e6:>12.0f} {record['tables']['lines']['rows']:>10} "
+                  f"{record['n_failed']:>6}", flush=True)
             shutil.rmtree(out, ignore_errors=True)  # free the disk space before the next size
         print("\nacceptance: ratio within 1.3 from the smallest to the largest size; peak_MB < 2000 at 1e6")
 

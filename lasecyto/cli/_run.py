@@ -111,14 +111,22 @@ def _demo_truth_check(experiment_dir, result, out=None):
     print(f"  controls flagged         {int(ctrl['changed'].sum())} of {len(ctrl)}", file=out)
 
 
+EXIT_INTERRUPTED = 130  # the shell's status for a run stopped with Ctrl-C (128 + SIGINT)
+
+
 def _run(args, manifest, run_dir):
     from ..pipeline import run_experiment
 
-    return run_experiment(manifest, run_dir, workers=args.workers, recipe=args.recipe,
-                          show_progress=False if args.quiet else None,
-                          write_report=not args.no_report, command=args.command_line,
-                          resume=args.resume, scheduler=args.scheduler, scheduler_file=args.scheduler_file,
-                          csv=not args.no_csv)
+    try:
+        return run_experiment(manifest, run_dir, workers=args.workers, recipe=args.recipe,
+                              show_progress=False if args.quiet else None,
+                              write_report=not args.no_report, command=args.command_line,
+                              resume=args.resume, scheduler=args.scheduler,
+                              scheduler_file=args.scheduler_file, csv=not args.no_csv)
+    except KeyboardInterrupt:
+        print(f"\nlasecyto: interrupted; the cells finished so far are kept in {Path(run_dir) / 'items'}: "
+              "run the same command with --resume to continue", file=sys.stderr)
+        return None
 
 
 def _usage_problem(args):
@@ -133,6 +141,8 @@ def handle_run(args):
         print(f"lasecyto run: error: {problem}", file=sys.stderr)
         return EXIT_USAGE
     result = _run(args, args.manifest, args.out)
+    if result is None:
+        return EXIT_INTERRUPTED
     if not args.quiet:
         _summary(result)
     return EXIT_PARTIAL if result.n_failed else EXIT_OK
@@ -150,6 +160,8 @@ def handle_demo(args):
         print(f"generating the synthetic demo experiment in {exp_dir} (seed {args.seed}) ...")
     manifest = write_fp_experiment(exp_dir, rng=args.seed)
     result = _run(args, manifest, args.out / "run")
+    if result is None:
+        return EXIT_INTERRUPTED
     if not args.quiet:
         _summary(result)
         _demo_truth_check(args.out / "experiment", result)

@@ -26,7 +26,9 @@ from __future__ import annotations
 import concurrent.futures as cf
 import logging
 import multiprocessing
+import os
 import secrets
+import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -51,6 +53,21 @@ class Outcome:
     index: int
     result: object = None
     error: BaseException | None = None
+
+
+def _exit_with_parent(parent_pid, interval_s=0.5):
+    """Worker initializer: end this worker when the process that started it is gone.
+
+    A pool's workers otherwise outlive a run that was killed (SIGKILL gives
+    the parent no chance to stop them) and wait for work forever.
+    """
+
+    def watch():
+        while os.getppid() == parent_pid:
+            time.sleep(interval_s)
+        os._exit(1)
+
+    threading.Thread(target=watch, name="lasecyto-parent-watch", daemon=True).start()
 
 
 class Engine:
@@ -124,7 +141,8 @@ class LocalEngine(Engine):
         logger.info("starting %d worker processes for %d items (estimated serial work %.1f s)",
                     self.pool_workers, n - i, spent / i * (n - i) if i else float("nan"))
         ctx = multiprocessing.get_context("spawn")
-        with cf.ProcessPoolExecutor(max_workers=self.pool_workers, mp_context=ctx) as pool:
+        with cf.ProcessPoolExecutor(max_workers=self.pool_workers, mp_context=ctx,
+                                    initializer=_exit_with_parent, initargs=(os.getpid(),)) as pool:
             futures = {pool.submit(func, jobs[k]): k for k in range(i, n)}
             try:
                 for fut in cf.as_completed(futures):

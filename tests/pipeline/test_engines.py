@@ -117,6 +117,16 @@ def test_engine_options_are_checked(tmp_path):
     assert isinstance(make_engine(workers=3), LocalEngine)
 
 
+def test_cli_workers_with_a_scheduler_is_a_usage_error(small_experiment, tmp_path, capsys):
+    from lasecyto.cli import main
+
+    code = main(["run", str(small_experiment), "--out", str(tmp_path / "run"), "--workers", "2",
+                 "--scheduler", "tcp://127.0.0.1:8786"])
+    assert code == 2
+    assert "--workers" in capsys.readouterr().err
+    assert not (tmp_path / "run").exists()
+
+
 def test_missing_scheduler_file_is_a_clear_error(tmp_path):
     eng = DaskEngine(scheduler_file=tmp_path / "scheduler.json")
     with pytest.raises(InputError, match="scheduler file not found"):

@@ -181,6 +181,17 @@ def test_kill_at_random_points_and_resume(small_experiment, reference, tmp_path)
     run_dir = tmp_path / "run"
     killed = kill_and_resume(small_experiment, run_dir, rng=rng, kills=3)
     assert killed >= 1
+    # Ctrl-C (SIGINT) on the command line: exit status 130 and a hint to resume
+    before = _finished_items(run_dir)
+    proc = subprocess.Popen([sys.executable, "-m", "lasecyto", "run", str(small_experiment), "--out", str(run_dir),
+                             "--resume", "--quiet", "--no-report"], stderr=subprocess.PIPE, text=True)
+    while proc.poll() is None and _finished_items(run_dir) <= before:
+        time.sleep(0.005)
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode in (0, 130)  # 0: the run had finished before the signal arrived
+    if proc.returncode == 130:
+        assert "--resume" in err
     final = _run(small_experiment, run_dir, resume=True)
     assert final.n_failed == 0
     _assert_same(reference, final)
