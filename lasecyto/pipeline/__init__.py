@@ -6,7 +6,7 @@ from ._lines_stage import lines_table, stack_lines
 from ._lines_only import fit_stack
 from ._params import (DEFAULT_PARAMETERS, builtin_recipes, find_recipe, load_recipe, parameter_problems,
                       resolve_parameters)
-from ._run import ItemProgress, RunResult, calibrate_lamp, check_experiment, run_experiment
+from ._run import ExperimentPlan, ItemProgress, RunResult, calibrate_lamp, check_experiment, run_experiment
 
 __all__ = [
     "DEFAULT_PARAMETERS",
@@ -15,6 +15,7 @@ __all__ = [
     "CellResult",
     "DaskEngine",
     "Engine",
+    "ExperimentPlan",
     "ItemProgress",
     "LocalEngine",
     "RunResult",

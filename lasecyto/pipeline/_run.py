@@ -41,7 +41,7 @@ from ._engines import PARALLEL_MIN_S, Engine, make_engine
 from ._params import find_recipe, load_recipe, parameter_problems
 from ._store import AssembledTables, FileHashes, ItemStore, TableFiles, item_key, run_lock
 
-__all__ = ["ItemProgress", "RunResult", "calibrate_lamp", "check_experiment", "run_experiment"]
+__all__ = ["ExperimentPlan", "ItemProgress", "RunResult", "calibrate_lamp", "check_experiment", "run_experiment"]
 
 logger = logging.getLogger("lasecyto.pipeline")
 
@@ -227,9 +227,10 @@ def check_experiment(manifest_path, *, recipe=None) -> ExperimentPlan:
     prefixes.append("parameters.")
     params, found = parameter_problems(*layers, sources=sources, prefixes=prefixes)
     problems += found
+    if len(problems) == 1:
+        raise InputError(problems[0])
     if problems:
-        n = len(problems)
-        raise InputError(f"{n} problem{'s' if n > 1 else ''} with the experiment: " + "; ".join(problems))
+        raise InputError(f"{len(problems)} problems with the experiment: " + "; ".join(problems))
     return ExperimentPlan(manifest=manifest, parameters=params, recipe=recipe_path, recipe_origin=origin)
 
 
@@ -309,9 +310,17 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
                            progress=progress, workers=workers, started=started, t_start=t_start, csv=csv)
 
 
+def _remove_leftovers(directory):
+    """Temporary files of atomic writes that a killed run left behind (we hold the run lock)."""
+    for tmp in Path(directory).glob(".*.tmp"):
+        tmp.unlink(missing_ok=True)
+
+
 def _run_locked(manifest, params, plan, out_dir, *, engine, resume, show_progress, write_report, command,
                 progress, workers, started, t_start, csv):
     (out_dir / "tables").mkdir(parents=True, exist_ok=True)
+    _remove_leftovers(out_dir)
+    _remove_leftovers(out_dir / "tables")
     store = ItemStore(out_dir, fresh=not resume)
     file_hash = FileHashes()
 

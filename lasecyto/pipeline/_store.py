@@ -153,6 +153,8 @@ class ItemStore:
         if fresh and self.root.exists():
             shutil.rmtree(self.root)
         self.root.mkdir(parents=True, exist_ok=True)
+        for tmp in self.root.glob("*/.*.tmp"):  # left by a killed run (atomic writes not finished)
+            tmp.unlink(missing_ok=True)
         if not tag.is_file():
             tag.write_text(f"lasecyto item store, format {STORE_VERSION}\n", encoding="utf-8")
 

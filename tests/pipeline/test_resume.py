@@ -200,3 +200,4 @@ def test_kill_at_random_points_and_resume(small_experiment, reference, tmp_path)
     assert not final.tables["cell_frames"].duplicated(["cell_id", "frame"]).any()
     assert list(final.tables["cells"]["cell_id"]) == list(reference.tables["cells"]["cell_id"])
     assert not (run_dir / ".lasecyto-run.lock").exists()
+    assert not list(run_dir.rglob(".*.tmp"))  # no temporary files of interrupted writes remain
