@@ -11,8 +11,9 @@ opens its own files.
 When the local engine uses processes
 ------------------------------------
 Starting a worker process (spawn: a fresh interpreter that imports numpy,
-SciPy, pandas and lasecyto) costs about 1.3 s on the 2-core reference
-machine, 1.5-1.9 s for a pool of two (``benchmarks/engines.py`` measures it).  A pool of ``w`` workers saves ``W (1 - 1/w)`` of ``W``
+SciPy, pandas and lasecyto) costs 1.3-3 s on the 2-core reference machine,
+1.5-4.5 s for a pool of two, depending on other load (``benchmarks/engines.py``
+measures it).  A pool of ``w`` workers saves ``W (1 - 1/w)`` of ``W``
 seconds of serial work, so it pays only when ``W`` is several seconds.  The
 local engine therefore runs items in the calling process first and moves the
 rest to a pool only when the work left, estimated as the mean time of the
@@ -40,9 +41,10 @@ __all__ = ["DaskEngine", "Engine", "LocalEngine", "Outcome", "PARALLEL_MIN_S", "
 logger = logging.getLogger("lasecyto.pipeline.engines")
 
 #: Estimated serial work (s) above which the local engine starts its process pool.
-#: benchmarks/engines.py on the 2-core reference machine: a 2-worker pool takes 1.5-1.9 s
-#: to start, so on an idle machine it breaks even near 2 x 1.7 = 3.4 s of serial work; with
-#: other jobs on the cores the measured break-even was 18-23 s.  10 s is between the two.
+#: benchmarks/engines.py on the 2-core reference machine: a 2-worker pool takes 1.5-4.5 s
+#: to start (more when other jobs share the cores), so on an idle machine it breaks even near
+#: 2 x 1.7 = 3.4 s of serial work; with other jobs on the cores the measured break-even was
+#: 18 s, 23 s and above 16 s in three runs.  10 s is between the two.
 PARALLEL_MIN_S = 10.0
 
 
