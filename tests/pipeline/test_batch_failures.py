@@ -10,10 +10,10 @@ from lasecyto.synth import tile_experiment, write_fp_experiment
 
 @pytest.fixture(scope="module")
 def batch_of_50(tmp_path_factory):
-    """50 cells (copies of 4 generated 12-frame cells), three of them made corrupt."""
+    """50 cells (copies of 4 generated 8-frame cells), three of them made corrupt."""
     root = tmp_path_factory.mktemp("batch50")
-    base = write_fp_experiment(root / "base", n_dishes=2, cells_per_dish=2, n_frames=12,
-                               perturbation_s=60.0, imaging_dish=False, rng=50)
+    base = write_fp_experiment(root / "base", n_dishes=2, cells_per_dish=2, n_frames=8,
+                               perturbation_s=40.0, imaging_dish=False, rng=50)
     manifest = tile_experiment(base, root / "tiled", n_cells=50, files="copy")
     spectra = manifest.parent / "spectra"
     bad = {}

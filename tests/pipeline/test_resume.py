@@ -29,12 +29,26 @@ def _assert_same(a, b):
         pd.testing.assert_frame_equal(a.tables[name], b.tables[name], check_exact=True)
 
 
+@pytest.fixture(scope="module")
+def tiny_experiment(tmp_path_factory):
+    """4 cells (A-01, A-02, B-01, B-02) of 16 frames: enough for the batch machinery."""
+    from lasecyto.synth import write_fp_experiment
+
+    return write_fp_experiment(tmp_path_factory.mktemp("tiny") / "experiment", n_dishes=2, cells_per_dish=2,
+                               n_frames=16, perturbation_s=80.0, imaging_dish=False, rng=16)
+
+
 @pytest.fixture()
-def experiment(small_experiment, tmp_path):
-    """A private copy of the small experiment (these tests change files)."""
+def experiment(tiny_experiment, tmp_path):
+    """A private copy of the tiny experiment (these tests change files)."""
     dst = tmp_path / "experiment"
-    shutil.copytree(small_experiment.parent, dst)
-    return dst / small_experiment.name
+    shutil.copytree(tiny_experiment.parent, dst)
+    return dst / tiny_experiment.name
+
+
+@pytest.fixture(scope="module")
+def tiny_reference(tiny_experiment, tmp_path_factory):
+    return _run(tiny_experiment, tmp_path_factory.mktemp("tiny_reference"))
 
 
 @pytest.fixture(scope="module")
@@ -46,18 +60,18 @@ def _statuses(result):
     return {it["item"]: ("resumed" if it.get("resumed") else it["status"]) for it in result.record["items"]}
 
 
-def test_resume_keeps_finished_items(experiment, reference, tmp_path):
+def test_resume_keeps_finished_items(experiment, tiny_reference, tmp_path):
     first = _run(experiment, tmp_path / "run")
     again = _run(experiment, tmp_path / "run", resume=True)
-    assert again.record["n_resumed"] == 6
+    assert again.record["n_resumed"] == 4
     assert again.record["engine"]["serial_items"] == 0
-    _assert_same(reference, again)
+    _assert_same(tiny_reference, again)
     _assert_same(first, again)
     fresh = _run(experiment, tmp_path / "run")  # without --resume every item runs again
     assert fresh.record["n_resumed"] == 0
 
 
-def test_resume_recomputes_a_changed_input(experiment, reference, tmp_path):
+def test_resume_recomputes_a_changed_input(experiment, tiny_reference, tmp_path):
     _run(experiment, tmp_path / "run")
     stack = experiment.parent / "spectra" / "A-02.tif"
     data = tifffile.imread(stack)
@@ -68,7 +82,7 @@ def test_resume_recomputes_a_changed_input(experiment, reference, tmp_path):
     assert st.pop("A-02") == "ok" and st.pop("lamp") == "ok"
     assert set(st.values()) == {"resumed"}
     cells = again.tables["cells"]
-    assert list(cells["cell_id"]) == list(reference.tables["cells"]["cell_id"])
+    assert list(cells["cell_id"]) == list(tiny_reference.tables["cells"]["cell_id"])
 
 
 def test_resume_recomputes_everything_when_a_parameter_changes(experiment, tmp_path):
@@ -80,7 +94,7 @@ def test_resume_recomputes_everything_when_a_parameter_changes(experiment, tmp_p
     assert again.record["parameters"]["tracks"]["max_gap_frames"] == 4
 
 
-def test_resume_retries_failed_items(experiment, reference, tmp_path):
+def test_resume_retries_failed_items(experiment, tiny_reference, tmp_path):
     side = experiment.parent / "spectra" / "B-01.json"
     good = side.read_text()
     meta = json.loads(good)
@@ -92,12 +106,12 @@ def test_resume_retries_failed_items(experiment, reference, tmp_path):
     again = _run(experiment, tmp_path / "run", resume=True)
     st = _statuses(again)
     assert st["B-01"] == "ok" and again.n_failed == 0
-    assert sum(v == "resumed" for v in st.values()) == 5
-    _assert_same(reference, again)
+    assert sum(v == "resumed" for v in st.values()) == 3
+    _assert_same(tiny_reference, again)
 
 
-def test_item_key_follows_what_the_item_depends_on(small_experiment, tmp_path):
-    root = small_experiment.parent
+def test_item_key_follows_what_the_item_depends_on(tiny_experiment, tmp_path):
+    root = tiny_experiment.parent
     stack = tmp_path / "a.tif"
     shutil.copy(root / "spectra" / "A-01.tif", stack)
     side = str(root / "spectra" / "A-01.json")
@@ -114,11 +128,11 @@ def test_item_key_follows_what_the_item_depends_on(small_experiment, tmp_path):
     assert key != item_key(CellJob(**base), file_hash=FileHashes())
 
 
-def test_foreign_items_directory_is_never_removed(small_experiment, tmp_path):
+def test_foreign_items_directory_is_never_removed(tiny_experiment, tmp_path):
     (tmp_path / "run" / "items").mkdir(parents=True)
     (tmp_path / "run" / "items" / "mine.txt").write_text("keep")
     with pytest.raises(InputError, match="did not write"):
-        _run(small_experiment, tmp_path / "run")
+        _run(tiny_experiment, tmp_path / "run")
     assert (tmp_path / "run" / "items" / "mine.txt").read_text() == "keep"
 
 
