@@ -2,11 +2,22 @@
 
 from __future__ import annotations
 
+import argparse
 import os
 import sys
 from pathlib import Path
 
-from ._common import EXIT_OK, EXIT_PARTIAL
+from ._common import EXIT_OK, EXIT_PARTIAL, EXIT_USAGE
+
+
+def _positive_int(text):
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, found {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, found {text!r}")
+    return value
 
 
 #: demo scenarios: name -> (generator in lasecyto.synth, what it is)
@@ -18,12 +29,28 @@ _SCENARIOS = {
 
 
 def _add_run_options(p, workers=1):
-    p.add_argument("--workers", type=int, default=workers, metavar="N",
-                   help=f"worker processes (default {workers}; each opens its own files)")
-    p.add_argument("--recipe", type=Path, default=None, metavar="FILE",
-                   help="recipe of stage parameters (TOML); the manifest's [parameters] override it")
+    p.add_argument("--workers", type=_positive_int, default=None, metavar="N",
+                   help=f"local worker processes (default {workers}; each opens its own files; a pool is "
+                        "started only when the batch is large enough to pay for it)")
+    p.set_defaults(default_workers=workers)
+    p.add_argument("--recipe", default=None, metavar="NAME|FILE",
+                   help="recipe of stage parameters: a TOML file or a built-in name such as "
+                        "fabry_perot_timelapse; wins over the manifest's [experiment] recipe; the "
+                        "manifest's [parameters] override it")
+    p.add_argument("--resume", action="store_true",
+                   help="keep the finished items of an earlier run in the same directory whose inputs, "
+                        "parameters and package version are unchanged; recompute the others")
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="run the items on a Dask distributed cluster at ADDRESS "
+                            "(e.g. tcp://10.0.0.5:8786; needs lasecyto[dask])")
+    where.add_argument("--scheduler-file", type=Path, default=None, metavar="FILE",
+                       help="run the items on the Dask cluster described by FILE (written by the scheduler)")
     p.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
     p.add_argument("--no-report", action="store_true", help="do not write report.html")
+    p.add_argument("--no-csv", action="store_true",
+                   help="write the tables as Parquet only (for very large runs: the CSV of the lines "
+                        "table is several GB and slow to write)")
 
 
 def register(sub):
@@ -69,6 +96,9 @@ def _summary(result, out=None):
             print(f"  {cond:<{width}}  {k:>3} of {n:>3} changed{extra}", file=out)
         _analysis_summary(result.record.get("analysis") or {}, cells, out)
     failed = [it for it in result.record["items"] if it["status"] != "ok"]
+    n_resumed = result.record.get("n_resumed", 0)
+    if n_resumed:
+        print(f"\n{n_resumed} item(s) kept from the earlier run in this directory (--resume)", file=out)
     if failed:
         print(f"\n{len(failed)} item(s) failed:", file=out)
         for it in failed:
@@ -137,16 +167,39 @@ def _demo_truth_check(experiment_dir, result, out=None):
         print(f"  dominant transverse order one of the true ones  {int(dominant.sum())} of {len(pt)}", file=out)
 
 
+EXIT_INTERRUPTED = 130  # the shell's status for a run stopped with Ctrl-C (128 + SIGINT)
+
+
 def _run(args, manifest, run_dir):
     from ..pipeline import run_experiment
 
-    return run_experiment(manifest, run_dir, workers=args.workers, recipe=args.recipe,
-                          show_progress=False if args.quiet else None,
-                          write_report=not args.no_report, command=args.command_line)
+    try:
+        workers = args.default_workers if args.workers is None else args.workers
+        return run_experiment(manifest, run_dir, workers=workers, recipe=args.recipe,
+                              show_progress=False if args.quiet else None,
+                              write_report=not args.no_report, command=args.command_line,
+                              resume=args.resume, scheduler=args.scheduler,
+                              scheduler_file=args.scheduler_file, csv=not args.no_csv)
+    except KeyboardInterrupt:
+        print(f"\nlasecyto: interrupted; the cells finished so far are kept in {Path(run_dir) / 'items'}: "
+              "run the same command with --resume to continue", file=sys.stderr)
+        return None
+
+
+def _usage_problem(args):
+    if (args.scheduler is not None or args.scheduler_file is not None) and args.workers is not None:
+        return "--workers applies to the local engine; with --scheduler the cluster's workers run the items"
+    return None
 
 
 def handle_run(args):
+    problem = _usage_problem(args)
+    if problem:
+        print(f"lasecyto run: error: {problem}", file=sys.stderr)
+        return EXIT_USAGE
     result = _run(args, args.manifest, args.out)
+    if result is None:
+        return EXIT_INTERRUPTED
     if not args.quiet:
         _summary(result)
         _threshold_summary(result, None)
@@ -183,11 +236,17 @@ def handle_demo(args):
     from .. import synth
 
     writer, story = _SCENARIOS[args.scenario]
+    problem = _usage_problem(args)
+    if problem:
+        print(f"lasecyto demo: error: {problem}", file=sys.stderr)
+        return EXIT_USAGE
     exp_dir = args.out / "experiment"
     if not args.quiet:
         print(f"generating the synthetic demo experiment ({story}) in {exp_dir} (seed {args.seed}) ...")
     manifest = getattr(synth, writer)(exp_dir, rng=args.seed)
     result = _run(args, manifest, args.out / "run")
+    if result is None:
+        return EXIT_INTERRUPTED
     if not args.quiet:
         _summary(result)
         if args.scenario == "pump":

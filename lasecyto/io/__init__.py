@@ -10,6 +10,7 @@ from ._images import ImageStack, read_image_stack
 from ._manifest import CellSpec, DishSpec, FieldSpec, LampSpec, Manifest, missing_files, read_manifest
 from ._sidecar import CameraModel, Sidecar, check_sidecar, default_sidecar_path, read_sidecar
 from ._stack import FORMATS, SpectralStack, read_stack
+from ._parts import read_table_parts, write_part, write_table_parts
 from ._write import atomic_path, file_sha256, read_table, write_json, write_table
 
 __all__ = [
@@ -33,6 +34,9 @@ __all__ = [
     "read_sidecar",
     "read_stack",
     "read_table",
+    "read_table_parts",
     "write_json",
+    "write_part",
     "write_table",
+    "write_table_parts",
 ]

@@ -91,6 +91,7 @@ class Manifest:
     kind: str = "time-lapse"
     sphere: dict | None = None
     pump: dict | None = None
+    recipe: str | None = None  # [experiment] recipe: a path relative to the manifest or a built-in name
 
 
 def _join(root, relative):
@@ -267,6 +268,7 @@ def read_manifest(path) -> Manifest:
     if not isinstance(description, str):
         p.add("experiment.description", "not a string", "a string", _show(description))
         description = ""
+    recipe = p.text(exp, "recipe", "experiment", required=False)
 
     lamp = None
     lamp_doc = _table(doc, "lamp", p, "lamp")
@@ -404,7 +406,7 @@ def read_manifest(path) -> Manifest:
                     parameters=parameters, medium=medium, cell_thickness_um=thickness,
                     fields={k: v for k, v in fields.items() if v is not None},
                     control_conditions=controls, classifier_model=model, kind=kind, sphere=sphere,
-                    pump=pump)
+                    pump=pump, recipe=recipe)
 
 
 def missing_files(manifest: Manifest) -> list[tuple[str, Path]]:

@@ -38,7 +38,7 @@ def _fsync_dir(directory):
 
 
 @contextlib.contextmanager
-def atomic_path(path):
+def atomic_path(path, *, fsync=True):
     """Write a file atomically through a temporary file in the same directory.
 
     Yields the path of an empty temporary file beside ``path``.  When the
@@ -50,6 +50,11 @@ def atomic_path(path):
     ----------
     path : str or os.PathLike
         Final destination.  Its directory must exist.
+    fsync : bool
+        Flush the file and its directory entry to disk (default).  Without
+        it the rename is still atomic for other processes and survives the
+        writer being killed, but a power cut may leave an empty or short file
+        (for files whose readers check them, such as per-item results).
 
     Examples
     --------
@@ -64,14 +69,16 @@ def atomic_path(path):
     os.close(fd)
     try:
         yield tmp
-        with open(tmp, "r+b") as fh:
-            os.fsync(fh.fileno())
+        if fsync:
+            with open(tmp, "r+b") as fh:
+                os.fsync(fh.fileno())
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
-    _fsync_dir(directory)
+    if fsync:
+        _fsync_dir(directory)
 
 
 def file_sha256(path) -> str:
@@ -109,8 +116,10 @@ def _jsonable(obj, where):
                      found=type(obj).__name__)
 
 
-def write_json(obj, path) -> Path:
+def write_json(obj, path, *, fsync=True) -> Path:
     """Write ``obj`` as JSON atomically (indent 2, sorted keys, NaN written as null).
+
+    ``fsync`` as in :func:`atomic_path`.
 
     Returns
     -------
@@ -119,7 +128,7 @@ def write_json(obj, path) -> Path:
     """
     path = Path(path)
     text = json.dumps(_jsonable(obj, "$"), indent=2, sort_keys=True, allow_nan=False) + "\n"
-    with atomic_path(path) as tmp:
+    with atomic_path(path, fsync=fsync) as tmp:
         tmp.write_text(text, encoding="utf-8")
     return path
 
@@ -129,7 +138,7 @@ def _stem(path_stem):
     return p.with_suffix("") if p.suffix.lower() in _TABLE_SUFFIXES else p
 
 
-def write_table(table: pd.DataFrame, path_stem, *, name: str) -> tuple[Path, Path]:
+def write_table(table: pd.DataFrame, path_stem, *, name: str, csv: bool = True) -> tuple[Path, Path | None]:
     """Validate a table against its schema and write it as Parquet and CSV.
 
     Parameters
@@ -140,11 +149,15 @@ def write_table(table: pd.DataFrame, path_stem, *, name: str) -> tuple[Path, Pat
         dropped).  Missing parent directories are created.
     name : str
         Schema name in :data:`lasecyto.tables.SCHEMAS`.
+    csv : bool
+        Also write the CSV file (default).  When False, a CSV file of the
+        same name left by an earlier write is removed, so the two never disagree.
 
     Returns
     -------
-    (pathlib.Path, pathlib.Path)
-        The Parquet and CSV paths.  Each file is written atomically.
+    (pathlib.Path, pathlib.Path or None)
+        The Parquet and CSV paths (None when no CSV was written).  Each file
+        is written atomically.
     """
     df = validate(table, name)
     stem = _stem(path_stem)
@@ -153,6 +166,10 @@ def write_table(table: pd.DataFrame, path_stem, *, name: str) -> tuple[Path, Pat
     csv_path = stem.with_name(stem.name + ".csv")
     with atomic_path(pq_path) as tmp:
         df.to_parquet(tmp, engine="pyarrow", index=False)
+    if not csv:
+        with contextlib.suppress(FileNotFoundError):
+            csv_path.unlink()
+        return pq_path, None
     with atomic_path(csv_path) as tmp:
         df.to_csv(tmp, index=False, na_rep=_NAN_TEXT, lineterminator="\n")
     return pq_path, csv_path

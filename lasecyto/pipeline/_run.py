@@ -1,44 +1,65 @@
-"""Batch run over an experiment: calibration, cells, tables, run record."""
+"""Batch run over an experiment: validation, calibration, items, tables, run record.
+
+The flow of :func:`run_experiment`:
+
+1. :func:`check_experiment` validates the manifest and the recipe together and
+   reports every problem at once.
+2. The lamp frame is calibrated (cheap; redone on resume, its axis enters
+   every item's key).
+3. One :class:`CellJob` per cell; with ``resume`` the items whose key matches
+   a finished item in ``RUN_DIR/items`` are skipped.
+4. An engine (``_engines.py``) runs the other items; each result is persisted
+   as it arrives (``_store.py``), whatever the completion order.
+5. The tables are assembled from the persisted items in manifest order; the
+   experiment-level stage runs on them (always, also on resume); the tables
+   are written (streamed, so memory stays bounded), then the run record.
+"""
 
 from __future__ import annotations
 
-import concurrent.futures as cf
+import contextlib
 import datetime as _dt
 import importlib.metadata
 import logging
-import multiprocessing
 import platform
 import sys
+import time
+import tomllib
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
 from .. import tables
 from .._version import __version__
 from ..calibration import reference_lines, solve_dispersion
 from ..exceptions import InputError, LasecytoError
-from ..io import (atomic_path, file_sha256, missing_files, read_manifest, read_sidecar, read_stack, write_json,
-                  write_table)
+from ..io import atomic_path, missing_files, read_manifest, read_sidecar, read_stack, write_json, write_table
 from ._cell import CellJob, CellResult, process_cell
+from ._engines import PARALLEL_MIN_S, Engine, make_engine
 from ._experiment import finish_experiment
+from ._params import find_recipe, load_recipe, parameter_problems
 from ._patterns import image_job_fields
-from ._params import load_recipe, resolve_parameters
+from ._store import AssembledTables, FileHashes, ItemStore, TableFiles, item_key, run_lock
 
-__all__ = ["RunResult", "run_experiment", "calibrate_lamp"]
+__all__ = ["ExperimentPlan", "ItemProgress", "RunResult", "calibrate_lamp", "check_experiment", "run_experiment"]
 
 logger = logging.getLogger("lasecyto.pipeline")
 
-_DEPENDENCIES = ("numpy", "scipy", "pandas", "tifffile", "pyarrow", "tqdm", "matplotlib")
+_DEPENDENCIES = ("numpy", "scipy", "pandas", "tifffile", "pyarrow", "tqdm", "matplotlib", "distributed")
 
 
 @dataclass
 class RunResult:
-    """Outcome of :func:`run_experiment`."""
+    """Outcome of :func:`run_experiment`.
+
+    ``tables`` maps table names to DataFrames read from ``out_dir/tables``
+    when first accessed (a large run's tables are never all in memory).
+    """
 
     out_dir: Path
-    tables: dict
+    tables: Mapping
     record: dict
     report: Path | None
 
@@ -95,8 +116,10 @@ def _versions():
     return out
 
 
-def _hashes(manifest):
+def _hashes(manifest, file_hash, *, recipe=None):
     paths = {"manifest": manifest.path}
+    if recipe is not None:
+        paths["recipe"] = recipe
     if manifest.lamp is not None:
         paths["lamp.stack"] = manifest.lamp.stack
         paths["lamp.sidecar"] = manifest.lamp.sidecar
@@ -114,49 +137,132 @@ def _hashes(manifest):
     for key, path in paths.items():
         path = Path(path)
         if path not in seen:
-            seen[path] = file_sha256(path) if path.is_file() else None
+            seen[path] = file_hash(path) if path.is_file() else None
         out[key] = {"path": str(path), "sha256": seen[path]}
     return out
 
 
-def _concat(frames, name):
-    frames = [f for f in frames if f is not None and len(f)]
-    if not frames:
-        return tables.empty(name)
-    return tables.validate(pd.concat(frames, ignore_index=True), name)
+def _write_text(path, text):
+    with atomic_path(path) as tmp:
+        tmp.write_text(text, encoding="utf-8")
 
 
-def _cells_table(results, manifest):
-    rows = []
-    for r in results:
-        if r.status == "ok":
-            row = {k: v for k, v in r.cell.items() if k not in ("note", "quantity")}
-            row["quantity"] = r.cell.get("quantity", "")
-            row["note"] = r.cell.get("note", "")
-            rows.append(row)
-    if not rows:
-        return tables.empty("cells")
-    return tables.validate(pd.DataFrame(rows), "cells")
+@dataclass(frozen=True)
+class ItemProgress:
+    """What a ``progress`` callback of :func:`run_experiment` receives after each item.
+
+    Attributes
+    ----------
+    done, total : int
+        Items finished so far (including resumed and failed ones) and in all.
+    item : str
+        The cell id.
+    status : str
+        ``"ok"``, ``"failed"`` or ``"resumed"`` (kept from an earlier run).
+    seconds : float
+        Processing time of the item (for a resumed item: when it was computed).
+    elapsed_s : float
+        Time since the run started.
+    """
+
+    done: int
+    total: int
+    item: str
+    status: str
+    seconds: float
+    elapsed_s: float
 
 
-def _iterate(jobs, workers, progress):
-    if workers <= 1 or len(jobs) <= 1:
-        for job in jobs:
-            result = process_cell(job)
-            progress(result)
-            yield result
-        return
-    ctx = multiprocessing.get_context("spawn")
-    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
-        futures = {pool.submit(process_cell, job): i for i, job in enumerate(jobs)}
-        for fut in cf.as_completed(futures):
-            result = fut.result()
-            progress(result)
-            yield result
+@dataclass(frozen=True)
+class ExperimentPlan:
+    """A validated experiment: manifest, resolved parameters and where the recipe came from."""
+
+    manifest: object
+    parameters: dict
+    recipe: Path | None
+    recipe_origin: str | None
+
+
+def _raw_toml(path):
+    try:
+        with open(path, "rb") as fh:
+            return tomllib.load(fh)
+    except (OSError, tomllib.TOMLDecodeError, UnicodeDecodeError):
+        return None
+
+
+def check_experiment(manifest_path, *, recipe=None) -> ExperimentPlan:
+    """Validate a manifest and its recipe together; report every problem at once.
+
+    The parameters are, in increasing precedence: the defaults
+    (:data:`DEFAULT_PARAMETERS`), the recipe (``recipe`` when given, else the
+    manifest's ``[experiment] recipe``), and the manifest's ``[parameters]``.
+
+    Parameters
+    ----------
+    manifest_path : path
+        Experiment manifest (TOML).
+    recipe : path or str, optional
+        Recipe file or built-in recipe name; wins over the manifest's recipe.
+
+    Raises
+    ------
+    InputError
+        One error listing every problem of the manifest, the recipe and the
+        parameters, each with its file, key, what was expected and what was found.
+    """
+    problems = []
+    manifest = None
+    manifest_path = Path(manifest_path)
+    try:
+        manifest = read_manifest(manifest_path)
+        raw_recipe, raw_params = manifest.recipe, manifest.parameters
+        where = manifest.path
+    except InputError as exc:
+        problems.append(str(exc))
+        doc = _raw_toml(manifest_path) or {}
+        exp = doc.get("experiment") if isinstance(doc.get("experiment"), dict) else {}
+        raw_recipe = exp.get("recipe") if isinstance(exp.get("recipe"), str) else None
+        raw_params = doc.get("parameters") if isinstance(doc.get("parameters"), dict) else None
+        where = manifest_path.resolve()
+
+    layers, sources, prefixes = [], [], []
+    recipe_path, origin = None, None
+    name, base, field = (recipe, None, "--recipe") if recipe is not None else (raw_recipe, where.parent,
+                                                                               "experiment.recipe")
+    if name is not None:
+        origin = "command line" if recipe is not None else "manifest"
+        try:
+            recipe_path = find_recipe(name, base_dir=base, field=field)
+            layers.append(load_recipe(recipe_path))
+            sources.append(str(recipe_path))
+            prefixes.append("")
+        except InputError as exc:
+            problems.append(f"{where}: {exc}" if recipe is None else str(exc))
+    layers.append(raw_params)
+    sources.append(str(where))
+    prefixes.append("parameters.")
+    params, found = parameter_problems(*layers, sources=sources, prefixes=prefixes)
+    problems += found
+    if len(problems) == 1:
+        raise InputError(problems[0])
+    if problems:
+        raise InputError(f"{len(problems)} problems with the experiment: " + "; ".join(problems))
+    return ExperimentPlan(manifest=manifest, parameters=params, recipe=recipe_path, recipe_origin=origin)
+
+
+def _failed(cell_id, error, seconds=0.0):
+    return CellResult(cell_id, "failed", error=error, seconds=seconds)
+
+
+def _engine_error(exc):
+    text = " ".join(str(exc).split())
+    return f"engine: {type(exc).__name__}: {text}" if text else f"engine: {type(exc).__name__}"
 
 
 def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progress=None,
-                   write_report=True, command=None) -> RunResult:
+                   write_report=True, command=None, resume=False, scheduler=None, scheduler_file=None,
+                   engine=None, progress=None, parallel_min_s=PARALLEL_MIN_S, csv=True) -> RunResult:
     """Run the whole pipeline over an experiment manifest.
 
     Parameters
@@ -165,13 +271,37 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         Experiment manifest (TOML).
     out_dir : path
         Run directory; receives ``tables/`` (Parquet and CSV), ``run_record.json``,
-        ``calibration.txt`` and ``report.html``.
+        ``calibration.txt``, ``items/`` (per-item results) and ``report.html``.
     workers : int
-        Worker processes (1 = serial, the default).  Each worker opens its own files.
-    recipe : path, optional
-        Recipe of stage parameters; the manifest's ``[parameters]`` override it.
+        Largest number of local worker processes (1 = serial, the default).
+        Each worker opens its own files.  A pool is started only when the
+        work is large enough to pay for it (see ``parallel_min_s``).
+    recipe : path or str, optional
+        Recipe of stage parameters, a file or a built-in name; wins over the
+        manifest's ``[experiment] recipe``.  The manifest's ``[parameters]``
+        override the recipe.
     show_progress : bool, optional
         Progress bar on standard error; default: only when it is a terminal.
+    write_report : bool
+        Write ``report.html`` (needs matplotlib).
+    command : str, optional
+        Command line, for the run record.
+    resume : bool
+        Keep the items of an earlier run in ``out_dir`` whose key (input file
+        hashes, parameters, lamp axis, package version, ...) is unchanged and
+        that finished; recompute the others.  Without it the item store starts empty.
+    scheduler, scheduler_file : str or path, optional
+        Run the items on a Dask distributed cluster (``lasecyto[dask]``).
+    engine : Engine, optional
+        An engine object (overrides ``workers`` and the scheduler options).
+    progress : callable, optional
+        Called in this process after every item with an :class:`ItemProgress`.
+    parallel_min_s : float
+        Estimated serial work (s) above which the local engine starts its pool.
+    csv : bool
+        Write every table as CSV beside the Parquet file (default).  For very
+        large runs the CSV of ``lines`` is the slowest part of writing (about
+        20x slower than Parquet) and several GB.
 
     Returns
     -------
@@ -180,11 +310,36 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         ``record["items"]`` with their reason; the other cells are complete.
     """
     started = _dt.datetime.now(_dt.timezone.utc)
+    t_start = time.perf_counter()
     out_dir = Path(out_dir)
-    manifest = read_manifest(manifest_path)
-    recipe_layer = load_recipe(recipe) if recipe is not None else None
-    params = resolve_parameters(recipe_layer, manifest.parameters, source=str(manifest.path))
+    plan = check_experiment(manifest_path, recipe=recipe)
+    manifest, params = plan.manifest, plan.parameters
+    if engine is None:
+        engine = make_engine(workers=workers, scheduler=scheduler, scheduler_file=scheduler_file,
+                             parallel_min_s=parallel_min_s)
+    elif not isinstance(engine, Engine):
+        raise InputError("not an engine", field="engine", expected="a lasecyto.pipeline Engine",
+                         found=type(engine).__name__)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    with run_lock(out_dir):
+        return _run_locked(manifest, params, plan, out_dir, engine=engine, resume=resume,
+                           show_progress=show_progress, write_report=write_report, command=command,
+                           progress=progress, workers=workers, started=started, t_start=t_start, csv=csv)
+
+
+def _remove_leftovers(directory):
+    """Temporary files of atomic writes that a killed run left behind (we hold the run lock)."""
+    for tmp in Path(directory).glob(".*.tmp"):
+        tmp.unlink(missing_ok=True)
+
+
+def _run_locked(manifest, params, plan, out_dir, *, engine, resume, show_progress, write_report, command,
+                progress, workers, started, t_start, csv):
     (out_dir / "tables").mkdir(parents=True, exist_ok=True)
+    _remove_leftovers(out_dir)
+    _remove_leftovers(out_dir / "tables")
+    store = ItemStore(out_dir, fresh=not resume)
+    file_hash = FileHashes()
 
     items = []
     lamp_axis, lamp_error, calib_summary = None, None, None
@@ -192,7 +347,7 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         try:
             solution, calib_summary = calibrate_lamp(manifest.lamp, params)
             lamp_axis = solution.axis()
-            (out_dir / "calibration.txt").write_text(solution.report() + "\n")
+            _write_text(out_dir / "calibration.txt", solution.report() + "\n")
             items.append({"item": "lamp", "status": "ok", "error": "", "seconds": None})
         except (LasecytoError, OSError) as exc:
             lamp_error = str(exc)
@@ -202,13 +357,13 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
     missing = {}
     for owner, path in missing_files(manifest):
         missing.setdefault(owner, str(path))
-    jobs, order = [], {}
+    jobs, order, outcome_of = [], {}, {}
     for i, c in enumerate(manifest.cells):
         order[c.cell_id] = i
         if c.cell_id in missing:
             err = InputError("file not found", path=missing[c.cell_id], field=f"cells[{i}] ({c.cell_id})",
                              expected="an existing file", found="no such file")
-            items.append({"item": c.cell_id, "status": "failed", "error": str(err), "seconds": None})
+            outcome_of[c.cell_id] = {"item": c.cell_id, "status": "failed", "error": str(err), "seconds": None}
             continue
         jobs.append(CellJob(cell_id=c.cell_id, dish=c.dish, condition=c.condition,
                             perturbation_s=float(c.perturbation_s), stack=c.stack and str(c.stack),
@@ -218,36 +373,93 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
                             cell_thickness_um=float(c.cell_thickness_um), kind=manifest.kind,
                             sphere=manifest.sphere, pump=manifest.pump, **image_job_fields(manifest, c)))
 
+    total = len(manifest.cells)
+    done = 0
     bar = None
     if show_progress is None:
         show_progress = sys.stderr.isatty()
-    if show_progress and jobs:
-        from tqdm.auto import tqdm
-        bar = tqdm(total=len(jobs), unit="cell", desc="cells", file=sys.stderr)
 
-    def progress(result: CellResult):
+    def report_item(cell_id, status, seconds):
+        nonlocal done
+        done += 1
         if bar is not None:
             bar.update(1)
-        if result.status != "ok":
-            logger.warning("cell %s failed: %s", result.cell_id, result.error)
+        if progress is not None:
+            progress(ItemProgress(done=done, total=total, item=cell_id, status=status,
+                                  seconds=float(seconds or 0.0), elapsed_s=time.perf_counter() - t_start))
+
+    keys, pending = {}, []
+    for job in jobs:
+        keys[job.cell_id] = item_key(job, file_hash=file_hash)
+        kept = store.finished(job.cell_id, keys[job.cell_id]) if resume else None
+        if kept is not None:
+            outcome_of[job.cell_id] = {"item": job.cell_id, "status": "ok", "error": "",
+                                       "seconds": kept["seconds"], "resumed": True}
         else:
-            logger.info("cell %s done in %.2f s", result.cell_id, result.seconds)
+            pending.append(job)
+    n_early = total - len(pending)
+    logger.info("%d items: %d to run on %s, %d kept from an earlier run, %d with missing files",
+                total, len(pending), engine.kind, n_early - len(missing), len(missing))
+    for c in manifest.cells:
+        early = outcome_of.get(c.cell_id)
+        if early is not None:
+            report_item(c.cell_id, "resumed" if early.get("resumed") else "failed", early["seconds"])
+    if show_progress and total:
+        from tqdm.auto import tqdm
+        # items kept or failed before the start are the bar's initial count: rate and time
+        # left are computed from the items run now
+        bar = tqdm(total=total, initial=n_early, unit="item", desc=manifest.name or "items",
+                   file=sys.stderr, dynamic_ncols=True)
 
-    results = sorted(_iterate(jobs, workers, progress), key=lambda r: order[r.cell_id])
-    if bar is not None:
-        bar.close()
-    for r in results:
-        items.append({"item": r.cell_id, "status": r.status, "error": r.error,
-                      "seconds": round(r.seconds, 3)})
-    items.sort(key=lambda it: (-1 if it["item"] == "lamp" else order.get(it["item"], 10**9)))
+    log_lines = contextlib.nullcontext()
+    if bar is not None:  # log lines are printed above the bar instead of through it
+        from tqdm.contrib.logging import logging_redirect_tqdm
+        log_lines = logging_redirect_tqdm()
+    try:
+        with log_lines:
+            for outcome in engine.run(process_cell, pending):
+                job = pending[outcome.index]
+                if outcome.error is not None:
+                    result = _failed(job.cell_id, _engine_error(outcome.error))
+                else:
+                    result = outcome.result
+                doc = store.save(job.cell_id, keys[job.cell_id], result)
+                outcome_of[job.cell_id] = {"item": job.cell_id, "status": doc["status"], "error": doc["error"],
+                                           "seconds": doc["seconds"]}
+                if doc["status"] != "ok":
+                    logger.warning("cell %s failed: %s", job.cell_id, doc["error"])
+                else:
+                    logger.info("cell %s done in %.2f s (%d/%d)", job.cell_id, doc["seconds"], done + 1, total)
+                report_item(job.cell_id, doc["status"], doc["seconds"])
+    finally:
+        if bar is not None:
+            bar.close()
+    for c in manifest.cells:
+        items.append(outcome_of[c.cell_id])
 
-    names = [n for n in tables.SCHEMAS if n != "cells" and any(n in r.tables for r in results)]
-    names = list(dict.fromkeys(["lines", "tracks", "cell_frames"] + names))
-    out_tables = {name: _concat([r.tables.get(name) for r in results], name) for name in names}
-    out_tables["cells"] = _cells_table(results, manifest)
-    out_tables, analysis = finish_experiment(out_tables, manifest=manifest, parameters=params)
-    for name, table in out_tables.items():
-        write_table(table, out_dir / "tables" / name, name=name)
+    ids = [c.cell_id for c in manifest.cells if outcome_of[c.cell_id]["status"] == "ok"]
+    names = list(dict.fromkeys(["lines", "tracks", "cell_frames"] + store.table_names(ids) + ["cells"]))
+    out_tables = AssembledTables(store, ids, names)
+
+    # ---- experiment-level stage ------------------------------------------------------------
+    # Population steps that need every item, on the assembled tables (also on resume).
+    # ``out_tables`` loads a table only when it is read; the stage reads and changes only
+    # ``cells``, so it is given that table alone and the tables it never reads (``lines``,
+    # ``tracks``, ...) are streamed from the items to disk, never held in memory as a whole.
+    finished, analysis = finish_experiment({"cells": out_tables["cells"]}, manifest=manifest,
+                                           parameters=params)
+    out_tables.update(finished)
+    # -----------------------------------------------------------------------------------------
+
+    rows = {}
+    for name in out_tables:
+        if isinstance(out_tables, AssembledTables):
+            rows[name] = out_tables.write(name, out_dir / "tables" / name, csv=csv)
+        else:
+            table = tables.validate(out_tables[name], name)
+            write_table(table, out_dir / "tables" / name, name=name, csv=csv)
+            rows[name] = len(table)
+    result_tables = TableFiles(out_dir / "tables", list(rows))
 
     from ..features import CHANGE_RULE
     record = {
@@ -255,6 +467,7 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         "command": command,
         "started_utc": started.isoformat(timespec="seconds"),
         "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "elapsed_s": round(time.perf_counter() - t_start, 3),
         "versions": _versions(),
         "experiment": {"name": manifest.name, "manifest": str(manifest.path),
                        "resonator": manifest.resonator, "kind": manifest.kind,
@@ -264,29 +477,35 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
         "wavelengths": "vacuum (converted from air with the "
                        f"{params['calibration']['air_formula']} formula where the axis was in air)",
         "parameters": params,
-        "recipe": None if recipe is None else str(recipe),
+        "recipe": None if plan.recipe is None else str(plan.recipe),
+        "recipe_origin": plan.recipe_origin,
         "change_rule": CHANGE_RULE,
         "pump_safety": _pump_safety(manifest),
         "seeds": {"pipeline": "none: every stage is deterministic"},
         "workers": workers,
+        "engine": engine.describe(),
+        "resume": bool(resume),
+        "n_resumed": sum(1 for it in items if it.get("resumed")),
         "calibration": calib_summary,
         "analysis": analysis,
-        "inputs": _hashes(manifest),
+        "inputs": _hashes(manifest, file_hash, recipe=plan.recipe),
         "items": items,
         "n_failed": sum(1 for it in items if it["status"] != "ok"),
-        "tables": {name: {"rows": int(len(t)), "parquet": f"tables/{name}.parquet",
-                          "csv": f"tables/{name}.csv"} for name, t in out_tables.items()},
+        "tables": {name: {"rows": int(n), "parquet": f"tables/{name}.parquet",
+                          "csv": f"tables/{name}.csv" if csv else None} for name, n in rows.items()},
     }
     write_json(record, out_dir / "run_record.json")
     if record["pump_safety"] is not None:  # beside the tables that show pump energies and fluences
         with atomic_path(out_dir / "pump_safety.txt") as tmp:
             tmp.write_text(record["pump_safety"] + "\n", encoding="utf-8")
+    logger.info("run finished: %d items, %d failed, %d resumed, %.1f s", total, record["n_failed"],
+                record["n_resumed"], time.perf_counter() - t_start)
 
     report = None
     if write_report:
         try:
             from ..report import write_html_report
-            report = write_html_report(out_dir, tables=out_tables)
+            report = write_html_report(out_dir)
         except ImportError as exc:
             logger.warning("report not written: %s", exc)
-    return RunResult(out_dir=out_dir, tables=out_tables, record=record, report=report)
+    return RunResult(out_dir=out_dir, tables=result_tables, record=record, report=report)

@@ -11,6 +11,7 @@ write_pattern_experiment  an image-only experiment (emission-pattern stacks, no 
 write_sphere_experiment  dye-doped bead (whispering-gallery) lasers in cells: a medium-shift time-lapse
 write_pump_experiment    a pump-threshold series of bead lasers (rate-equation S-curves, known threshold)
 wgm_resonances        exact (complex-root) bead resonances and radiation-limited Q, own solver
+tile_experiment       a large experiment reusing the stacks of a few generated cells
 render_lamp_frame     one neon (or any line-lamp) frame through a known wavelength axis
 neon_lines_air_nm     Ne I air wavelengths 530-725 nm (NIST ASD)
 neon_relative_intensities  their NIST relative intensities
@@ -27,6 +28,7 @@ from ._media import water_index_daimon
 from ._modes import fp_mode_wavelengths
 from ._neon import neon_lines_air_nm, neon_relative_intensities
 from ._render import render_lamp_frame
+from ._tile import tile_experiment
 from ._trajectories import TRAJECTORY_SCENARIO, mode_trajectories
 
 __all__ = [
@@ -35,6 +37,7 @@ __all__ = [
     "write_sphere_experiment",
     "write_pump_experiment",
     "wgm_resonances",
+    "tile_experiment",
     "render_lamp_frame",
     "neon_lines_air_nm",
     "neon_relative_intensities",

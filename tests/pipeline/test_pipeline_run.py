@@ -8,7 +8,6 @@ import pytest
 
 from lasecyto import tables
 from lasecyto.io import read_table
-from lasecyto.pipeline import run_experiment
 
 
 @pytest.fixture(scope="module")
@@ -85,11 +84,3 @@ def test_tables_follow_their_schemas(fp_run):
     assert ok["center_nm"].between(575.0, 660.0).all()  # the detector window, vacuum
     assert (ok["center_err_nm"] > 0).all()
     assert (lines.loc[~lines["fit_ok"], "fit_message"] != "").all()
-
-
-def test_same_inputs_give_the_same_tables(small_experiment, tmp_path):
-    a = run_experiment(small_experiment, tmp_path / "a", show_progress=False, write_report=False)
-    b = run_experiment(small_experiment, tmp_path / "b", workers=2, show_progress=False,
-                       write_report=False)
-    for name in a.tables:
-        pd.testing.assert_frame_equal(a.tables[name], b.tables[name])
