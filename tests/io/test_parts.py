@@ -11,8 +11,11 @@ from lasecyto.io import read_table, read_table_parts, write_part, write_table, w
 
 def _cells(ids, *, extra=None):
     n = len(ids)
-    df = pd.DataFrame({c.name: np.zeros(n, dtype={"int": "int64", "float": "float64", "bool": "bool",
-                                                   "str": object}[c.kind]) for c in tables.SCHEMAS["cells"]})
+    def column(kind):
+        return np.full(n, "", dtype=object) if kind == "str" else np.zeros(n, dtype={
+            "int": "int64", "float": "float64", "bool": "bool"}[kind])
+
+    df = pd.DataFrame({c.name: column(c.kind) for c in tables.SCHEMAS["cells"]})
     df["cell_id"] = ids
     df["dish"] = "A"
     df["condition"] = "control"
