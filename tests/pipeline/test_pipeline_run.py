@@ -2,6 +2,7 @@
 
 import json
 
+import numpy as np  # noqa: F401  (kept for tests that other branches add here)
 import pandas as pd
 import pytest
 
