@@ -85,7 +85,7 @@ def _aligned(path, schema, name):
             if col.type != f.type:
                 try:
                     col = col.cast(f.type)
-                except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as exc:
+                except pa.ArrowException as exc:  # invalid value or a cast Arrow cannot do
                     raise SchemaError("part has a column of another type", path=path, field=f.name,
                                       expected=str(f.type), found=" ".join(str(exc).split())) from None
             columns.append(col)
