@@ -6,7 +6,10 @@ state; matplotlib is imported only when a function is called (install it with
 report draws and lists what the other stages wrote.
 """
 
-from ._figures import plot_kymograph, plot_onsets, plot_trace, plot_traces_by_condition
+from ._figures import (plot_kymograph, plot_onsets, plot_threshold_curves, plot_trace, plot_traces_by_condition,
+                       plot_values_by_condition)
 from ._html import write_html_report
+from ._montage import plot_pattern_montage
 
-__all__ = ["plot_kymograph", "plot_onsets", "plot_trace", "plot_traces_by_condition", "write_html_report"]
+__all__ = ["plot_kymograph", "plot_onsets", "plot_pattern_montage", "plot_threshold_curves", "plot_trace",
+           "plot_traces_by_condition", "plot_values_by_condition", "write_html_report"]

@@ -1,218 +1,178 @@
-"""Static, self-contained HTML report of a run."""
+"""Static, self-contained HTML report of a run.
+
+The page has no external resource of any kind: CSS and JavaScript are inline
+(:mod:`._assets`), figures are palette PNGs embedded as ``data:`` URIs
+(:mod:`._render`).  Sections, in order: summary (counts, flagged fractions
+with Wilson intervals, the verdict and control rule), failures, traces by
+condition, onset distribution, pump thresholds with the laser-safety cautions,
+classifier metrics, the sortable cell table, one panel per cell, run details.
+
+Size rule: every cell gets one compact panel (kymograph with its tracked
+modes and hops, its trace(s) with onset and perturbation, the threshold curves
+of a pump series, a strip of emission patches where images exist).  Panels are
+grouped by condition in collapsible blocks, open when the run has at most
+:data:`OPEN_PANELS_MAX` cells; the images load lazily.  Above
+:data:`FULL_DPI_MAX` cells the panels are drawn at :data:`SMALL_DPI` dots per
+inch instead of :data:`FULL_DPI`, so that the page grows by about 15-25 kB per
+cell.  Tables are read as :mod:`._read` states (memory bounded by one row
+group of the per-cell tables).
+"""
 
 from __future__ import annotations
 
-import base64
-import html
-import io
-import json
+import logging
 import math
-import os
-import tempfile
+import time
+from collections import Counter
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from .. import tables as _tables
 from ..exceptions import InputError
-from ..features import CHANGE_RULE, wilson_interval
-from ._figures import plot_kymograph, plot_onsets, plot_trace, plot_traces_by_condition
+from ..io import atomic_path
+from ._assets import CSS, SCRIPT
+from ._figures import plot_onsets, plot_traces_by_condition, plot_values_by_condition
 from ._mpl import require_matplotlib
+from ._panels import (FRAME_COLUMNS, LINE_COLUMNS, PATTERN_COLUMNS, TRACK_COLUMNS, CellData, PatternImages,
+                      draw_cell_panel, thin_trace, trace_columns)
+from ._read import RunTables, read_record
+from ._render import img_tag, new_figure
+from ._sections import (cautions_html, cell_heading_html, cell_table_html, classifier_html, condition_order, esc,
+                        failures_html, rule_html, run_details_html, summary_html, thresholds_html)
 
-__all__ = ["write_html_report"]
+__all__ = ["write_html_report", "OPEN_PANELS_MAX", "FULL_DPI_MAX", "FULL_DPI", "SMALL_DPI"]
 
-_TABLE_NAMES = ("lines", "tracks", "cell_frames", "cells")
-_MAX_CELL_PANELS = 12
-_OK_STATUSES = {"ok", "done", "success", "skipped", "cached"}
+logger = logging.getLogger("lasecyto.report")
 
-_CSS = """
-body{font-family:system-ui,-apple-system,"Segoe UI",Helvetica,Arial,sans-serif;margin:2em auto;max-width:1100px;
-color:#222;line-height:1.4;padding:0 1em}
-h1{font-size:1.6em;margin-bottom:.2em}h2{font-size:1.25em;border-bottom:1px solid #ccc;margin-top:1.6em}
-h3{font-size:1.05em;margin-bottom:.3em}
-table{border-collapse:collapse;margin:.6em 0;font-size:.9em}
-th,td{border:1px solid #ccc;padding:.25em .6em;text-align:right}th{background:#f2f2f2}
-td.t,th.t{text-align:left}
-.banner{background:#fff3cd;border:1px solid #e0c36a;padding:.6em 1em;margin:1em 0;font-weight:600}
-.note{color:#666;font-style:italic}
-.cells{display:grid;grid-template-columns:1fr 1fr;gap:.6em 1.2em}
-img{max-width:100%;height:auto}
-.flag{color:#b00020;font-weight:600}
-"""
+OPEN_PANELS_MAX = 40
+FULL_DPI_MAX = 100
+FULL_DPI = 80
+SMALL_DPI = 60
+_QUANTITY_WORDS = {"index_change": "refractive-index change", "relative_shift": "relative wavelength shift",
+                   "diameter_um": "bead diameter", "medium_index": "medium refractive index",
+                   "pattern_baseline_corr": "pattern correlation with the baseline"}
 
 
-def _read_tables(run_dir, given):
-    out = {}
-    given = dict(given or {})
-    for name in _TABLE_NAMES:
-        if given.get(name) is not None:
-            out[name] = _tables.validate(given[name], name)
-            continue
-        path = run_dir / "tables" / f"{name}.parquet"
-        if path.is_file():
-            out[name] = _tables.validate(pd.read_parquet(path), name, path=path)
-    return out
+def _anchor(i):
+    return f"cell-{i}"
 
 
-def _read_record(run_dir):
-    path = run_dir / "run_record.json"
-    if not path.is_file():
-        return {}
-    try:
-        record = json.loads(path.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise InputError("run record is not valid JSON", path=path, expected="a JSON object",
-                         found=str(exc)) from None
-    if not isinstance(record, dict):
-        raise InputError("run record is not a JSON object", path=path, expected="an object",
-                         found=type(record).__name__)
-    return record
+def _overview_quantity(cells, run, resonator, kind):
+    """The ``cell_frames`` column of the traces-by-condition figure, or None."""
+    if kind == "pump-series" or not run.has("cell_frames"):
+        return None
+    available = set(run.columns("cell_frames"))
+    candidates = []
+    if resonator == "sphere":
+        candidates.append("diameter_um")
+    if "quantity" in cells.columns:
+        counted = Counter(q for q in cells["quantity"].astype(str) if q and q != "nan")
+        candidates += [q for q, _n in counted.most_common()]
+    candidates += ["index_change", "relative_shift"]
+    for q in candidates:
+        if q in available:
+            return q
+    return None
 
 
-def _png(fig):
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-
-    FigureCanvasAgg(fig)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=100, metadata={"Software": None})
-    return base64.b64encode(buf.getvalue()).decode("ascii")
+def _figure(draw, alt, size, *, dpi=FULL_DPI):
+    fig = new_figure(*size)
+    draw(fig.add_subplot())
+    return img_tag(fig, alt, dpi=dpi)
 
 
-def _figure_html(draw, alt, size=(7.5, 3.6)):
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=size, layout="constrained")
-    ax = fig.add_subplot()
-    draw(ax)
-    return f'<img src="data:image/png;base64,{_png(fig)}" alt="{_e(alt)}">'
-
-
-def _fmt(value, spec):
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        return html.escape(str(value))
-    if math.isnan(v):
-        return "&ndash;"
-    return format(v, spec)
-
-
-def _e(text):
-    return html.escape(str(text), quote=True)
-
-
-def _quantity(cell_frames, preferred=None):
-    """Column to draw: the cells' stated quantity, else index_change when it has finite values."""
-    if preferred in ("index_change", "relative_shift"):
-        return preferred
-    las = cell_frames
-    if "lasing" in las.columns:
-        las = las[las["lasing"].to_numpy(dtype=bool)]
-    if np.isfinite(las["index_change"].to_numpy(dtype=float)).any():
-        return "index_change"
-    return "relative_shift"
-
-
-def _summary_html(cells):
-    n_cells = len(cells)
-    dishes = pd.unique(cells["dish"].astype(str))
-    rows = []
-    for cond, g in cells.groupby(cells["condition"].astype(str), sort=True):
-        n = len(g)
-        k = int(g["changed"].to_numpy(dtype=bool).sum())
-        low, high = wilson_interval(k, n)
-        rows.append(f'<tr><td class="t">{_e(cond)}</td><td>{pd.unique(g["dish"].astype(str)).size}</td>'
-                    f"<td>{n}</td><td>{k}</td><td>{_fmt(k / n, '.2f')}</td>"
-                    f"<td>{_fmt(low, '.2f')} &ndash; {_fmt(high, '.2f')}</td></tr>")
-    k_all = int(cells["changed"].to_numpy(dtype=bool).sum())
-    return (f"<p>{n_cells} cells in {len(dishes)} dishes, {cells['condition'].astype(str).nunique()} "
-            f"conditions; flagged as changed: {k_all} of {n_cells}.</p>"
-            '<table><tr><th class="t">condition</th><th>dishes</th><th>cells</th><th>flagged</th>'
-            "<th>fraction</th><th>Wilson 95 % interval</th></tr>" + "".join(rows) + "</table>")
-
-
-def _cell_table_html(cells):
-    rows = []
-    for r in cells.itertuples(index=False):
-        flag = '<span class="flag">yes</span>' if bool(r.changed) else "no"
-        rows.append(f'<tr><td class="t">{_e(r.cell_id)}</td><td class="t">{_e(r.dish)}</td>'
-                    f'<td class="t">{_e(r.condition)}</td><td>{_fmt(r.index_change, ".3e")}</td>'
-                    f"<td>{_fmt(r.change_z, '.1f')}</td><td>{_fmt(r.onset_s, '.1f')}</td>"
-                    f"<td>{flag}</td></tr>")
-    return ('<table id="cells"><tr><th class="t">cell_id</th><th class="t">dish</th><th class="t">condition</th>'
-            "<th>index_change</th><th>change_z</th><th>onset_s</th><th>changed</th></tr>"
-            + "".join(rows) + "</table>")
-
-
-def _failures_html(record):
-    items = record.get("items") or []
-    rows = []
-    for it in items:
-        if not isinstance(it, dict):
-            continue
-        status = str(it.get("status", "") or "")
-        error = it.get("error") or ""
-        if status.lower() in _OK_STATUSES and not error:
-            continue
-        if not status and not error:
-            continue
-        rows.append(f'<tr><td class="t">{_e(it.get("item", ""))}</td>'
-                    f'<td class="t">{_e(error or status)}</td></tr>')
-    if not rows:
-        return f'<p class="note">No failed items ({len(items)} items in the run record).</p>'
-    return ('<table><tr><th class="t">item</th><th class="t">reason</th></tr>' + "".join(rows) + "</table>")
-
-
-def _select_cells(cells):
-    changed = cells["changed"].to_numpy(dtype=bool)
-    ids = cells["cell_id"].astype(str).to_numpy()
-    flagged = sorted(ids[changed].tolist())
-    others = sorted(ids[~changed].tolist())
-    return (flagged + others)[:_MAX_CELL_PANELS]
-
-
-def _cell_panels_html(cells, tabs):
-    lines = tabs.get("lines")
-    tracks = tabs.get("tracks")
-    frames = tabs.get("cell_frames")
-    by_id = {str(r["cell_id"]): r for _, r in cells.iterrows()}
+def _traces_section(cells, run, quantity, conditions):
     parts = []
-    for cid in _select_cells(cells):
-        row = by_id[cid]
-        status = "changed" if bool(row["changed"]) else "not changed"
-        parts.append(f"<h3>{_e(cid)} &middot; {_e(row['condition'])} &middot; {_e(row['dish'])} &middot; "
-                     f"{status}</h3>")
-        figs = []
-        pts = None
-        if lines is not None:
-            pts = lines[lines["cell_id"].astype(str).to_numpy() == cid]
-        cell_tracks = None
-        if tracks is not None:
-            cell_tracks = tracks[tracks["cell_id"].astype(str).to_numpy() == cid]
-            if pts is None:
-                pts = cell_tracks
-        if pts is not None and len(pts):
-            figs.append(_figure_html(lambda ax, p=pts, tr=cell_tracks: plot_kymograph(p, ax=ax, tracks=tr),
-                                     f"kymograph of cell {cid}", size=(5.4, 3.4)))
-        if frames is not None:
-            cf = frames[frames["cell_id"].astype(str).to_numpy() == cid]
-            if len(cf):
-                q = _quantity(cf, row.get("quantity"))
-                onset = float(row["onset_s"])
-                pert = float(row["perturbation_s"])
-                figs.append(_figure_html(
-                    lambda ax, c=cf, q=q, o=onset, p=pert: plot_trace(c, ax=ax, quantity=q, onset_s=o,
-                                                                      perturbation_s=p),
-                    f"trace of cell {cid}", size=(5.4, 3.4)))
-        if figs:
-            parts.append('<div class="cells">' + "".join(f"<div>{f}</div>" for f in figs) + "</div>")
-        else:
-            parts.append('<p class="note">No lines or frames for this cell.</p>')
-        note = row.get("note")
-        if isinstance(note, str) and note:
-            parts.append(f'<p class="note">{_e(note)}</p>')
-    return "".join(parts)
+    for cid in cells["cell_id"].astype(str):
+        cf = run.cell("cell_frames", cid, ["time_s", "lasing", quantity])
+        if cf is None or quantity not in cf.columns:
+            continue
+        t, y = thin_trace(cf, quantity)
+        if t.size:
+            parts.append(pd.DataFrame({"cell_id": cid, "time_s": t, quantity: y}))
+    if not parts:
+        return None
+    frames = pd.concat(parts, ignore_index=True)
+    words = _QUANTITY_WORDS.get(quantity, quantity.replace("_", " "))
+    img = _figure(lambda ax: plot_traces_by_condition(frames, cells, ax=ax, quantity=quantity,
+                                                      conditions=conditions),
+                  f"{words} of every cell against time, by condition", (9.0, 3.8))
+    return (f"<figure>{img}<figcaption>{esc(words.capitalize())} of every lasing frame: thin lines one cell each, "
+            "thick lines the median of each condition; dashed: perturbation.</figcaption></figure>")
+
+
+def _onsets_section(cells, conditions):
+    if not np.isfinite(cells["onset_s"].to_numpy(float)).any():
+        return '<p class="note">No cell has an onset.</p>'
+    height = 0.9 + 0.55 * len(conditions)
+    img = _figure(lambda ax: plot_onsets(cells, ax=ax, conditions=conditions), "onset distribution",
+                  (9.0, height))
+    return (f"<figure>{img}<figcaption>Onset after the perturbation of each cell with an onset (bars: 1 sigma); "
+            "under each row the quartiles and the median.</figcaption></figure>")
+
+
+def _pump_section(cells, thresholds, record, conditions):
+    out = [cautions_html(record)]
+    if thresholds is None or not len(thresholds):
+        out.append('<p class="note">No mode threshold was fitted.</p>')
+        return "".join(out)
+    if "threshold_nj" in cells.columns and np.isfinite(cells["threshold_nj"].to_numpy(float)).any():
+        img = _figure(lambda ax: plot_values_by_condition(cells, "threshold_nj", ax=ax, err_column="threshold_err_nj"
+                                                          if "threshold_err_nj" in cells.columns else None,
+                                                          conditions=conditions, log=True),
+                      "lasing thresholds by condition", (9.0, 0.9 + 0.55 * len(conditions)))
+        out.append(f"<figure>{img}<figcaption>Lasing threshold of each cell (its lowest-threshold mode), "
+                   "by condition.</figcaption></figure>")
+    out.append(thresholds_html(thresholds))
+    return "".join(out)
+
+
+def _panel_groups(cells, run, record, conditions, anchors, *, kind, resonator, thresholds, images, dpi):
+    open_attr = " open" if len(cells) <= OPEN_PANELS_MAX else ""
+    cond = cells["condition"].astype(str).to_numpy()
+    changed = cells["changed"].fillna(False).to_numpy(bool)
+    fits_by_cell = {}
+    if thresholds is not None and len(thresholds):
+        fits_by_cell = {str(k): g.reset_index(drop=True) for k, g in thresholds.groupby("cell_id", sort=False)}
+    groups = []
+    for c in conditions:
+        rows = np.flatnonzero(cond == c)
+        rows = rows[np.lexsort((cells["cell_id"].astype(str).to_numpy()[rows], ~changed[rows]))]  # flagged first
+        parts = []
+        for i in rows:
+            cell = cells.iloc[i].to_dict()
+            cid = str(cell["cell_id"])
+            data = CellData(lines=run.cell("lines", cid, LINE_COLUMNS), tracks=run.cell("tracks", cid, TRACK_COLUMNS),
+                            frames=run.cell("cell_frames", cid, FRAME_COLUMNS),
+                            patterns=run.cell("patterns", cid, PATTERN_COLUMNS))
+            fig, notes = draw_cell_panel(data, cell, kind=kind, resonator=resonator, fits=fits_by_cell.get(cid),
+                                         images=images)
+            body = ""
+            if fig is not None:
+                body = img_tag(fig, f"panel of cell {cid}", dpi=dpi, lazy=True)
+            body += "".join(f'<p class="note">{esc(n)}</p>' for n in notes)
+            parts.append(f'<section class="cell" id="{anchors[cid]}" aria-label="cell {esc(cid)}">'
+                         f"<h4>{cell_heading_html(cell)}</h4>{body}</section>")
+        k = int(changed[cond == c].sum())
+        groups.append(f"<details{open_attr}><summary>{esc(c)}: {rows.size} cells, {k} flagged</summary>"
+                      + "".join(parts) + "</details>")
+    return "".join(groups)
+
+
+def _pattern_images(record, run):
+    if not run.has("patterns"):
+        return None, None
+    experiment = record.get("experiment") if isinstance(record.get("experiment"), dict) else {}
+    path = experiment.get("manifest")
+    if not path:
+        return None, "emission images not shown: the run record names no manifest"
+    from ..io import read_manifest
+
+    try:
+        return PatternImages(read_manifest(path)), None
+    except (InputError, OSError) as exc:
+        return None, f"emission images not shown: {exc}"
 
 
 def write_html_report(run_dir, *, tables=None, title=None) -> Path:
@@ -221,8 +181,9 @@ def write_html_report(run_dir, *, tables=None, title=None) -> Path:
     Parameters
     ----------
     run_dir : str or os.PathLike
-        Run directory holding ``tables/{lines,tracks,cell_frames,cells}.parquet``
-        and ``run_record.json``; each is optional.
+        Run directory holding ``tables/<name>.parquet`` and ``run_record.json``
+        (each optional); emission patches are cut from the image stacks named
+        by the run's manifest when it can still be read.
     tables : dict of str to pandas.DataFrame, optional
         Tables to use instead of those on disk, by name; missing names are read.
     title : str, optional
@@ -231,8 +192,8 @@ def write_html_report(run_dir, *, tables=None, title=None) -> Path:
     Returns
     -------
     pathlib.Path
-        Path of the report.  The file is self-contained (figures as base64
-        PNG, inline CSS, no scripts, no network) and written atomically.
+        Path of the report.  The file is self-contained (figures as inline
+        PNG, inline CSS and JavaScript, no network) and written atomically.
 
     Raises
     ------
@@ -243,64 +204,95 @@ def write_html_report(run_dir, *, tables=None, title=None) -> Path:
         When matplotlib is missing.
     """
     require_matplotlib()
+    t0 = time.perf_counter()
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
-        raise InputError("run directory not found", path=run_dir, expected="a directory",
-                         found="nothing")
-    tabs = _read_tables(run_dir, tables)
-    record = _read_record(run_dir)
+        raise InputError("run directory not found", path=run_dir, expected="a directory", found="nothing")
+    run = RunTables(run_dir, tables)
+    record = read_record(run_dir)
     experiment = record.get("experiment") if isinstance(record.get("experiment"), dict) else {}
+    kind = str(experiment.get("kind") or "time-lapse")
+    resonator = str(experiment.get("resonator") or "")
     name = experiment.get("name") or run_dir.name
     title = title or f"lasecyto report: {name}"
+    analysis = record.get("analysis") if isinstance(record.get("analysis"), dict) else {}
 
-    body = [f"<h1>{_e(title)}</h1>"]
-    if experiment.get("synthetic"):
-        body.append('<div class="banner">Synthetic data: this experiment was generated by a simulator, '
-                    "not measured.</div>")
-    if experiment.get("description"):
-        body.append(f"<p>{_e(experiment['description'])}</p>")
+    cells = run.whole("cells")
+    thresholds = run.whole("thresholds")
+    sections = []  # (anchor, heading, html)
 
-    cells = tabs.get("cells")
-    frames = tabs.get("cell_frames")
-    body.append("<h2>Experiment summary</h2>")
     if cells is not None and len(cells):
-        body.append(_summary_html(cells))
-        rule = record.get("change_rule") or CHANGE_RULE
-        body.append(f'<p class="note">Verdict rule: {_e(rule)}</p>')
+        cells = cells.reset_index(drop=True)
+        conditions = condition_order(cells, analysis.get("control_conditions") or ())
+        sections.append(("summary", "Experiment summary", summary_html(cells, record, conditions)
+                         + rule_html(record)))
     else:
-        body.append('<p class="note">No cells table in this run.</p>')
+        conditions = []
+        sections.append(("summary", "Experiment summary", '<p class="note">No cells table in this run.</p>'))
+    sections.append(("failures", "Failures", failures_html(record, cells)))
+    n_cells = 0 if cells is None else len(cells)
+    if n_cells:
+        quantity = _overview_quantity(cells, run, resonator, kind)
+        if quantity is not None:
+            html_ = _traces_section(cells, run, quantity, conditions)
+            if html_:
+                sections.append(("traces", "Traces by condition", html_))
+        if kind != "pump-series" and "onset_s" in cells.columns:
+            sections.append(("onsets", "Onset distribution", _onsets_section(cells, conditions)))
+        if kind == "pump-series":
+            sections.append(("thresholds", "Lasing thresholds", _pump_section(cells, thresholds, record, conditions)))
+    clf = classifier_html(record)
+    if clf:
+        sections.append(("classifier", "Classifier", clf))
+    if n_cells:
+        anchors = {cid: _anchor(i) for i, cid in enumerate(cells["cell_id"].astype(str))}
+        sections.append(("cell-list", "All cells", cell_table_html(cells, anchors=anchors,
+                                                                     pump=kind == "pump-series")))
+        images, why = _pattern_images(record, run)
+        dpi = FULL_DPI if n_cells <= FULL_DPI_MAX else SMALL_DPI
+        try:
+            panels = _panel_groups(cells, run, record, conditions, anchors, kind=kind, resonator=resonator,
+                                   thresholds=thresholds, images=images, dpi=dpi)
+        finally:
+            if images is not None:
+                images.close()
+        intro = ("<p>One panel per cell: the kymograph of its fitted lines (time by wavelength; dots coloured "
+                 "by line area, lasing lines only, other fits grey) with its tracked modes drawn over it "
+                 "and mode hops marked with a cross")
+        if kind == "pump-series":
+            intro += ", and its modes' output against pump energy (log-log) with the fitted S-curves"
+        else:
+            intro += ("; its trace with the 1-sigma band, the perturbation (dashed) and the onset "
+                      "(solid, shaded by its uncertainty)")
+        intro += ("; where images exist, patches of its emission pattern (* marks a pattern change). "
+                  "Flagged cells come first in each condition.</p>")
+        if why:
+            intro += f'<p class="note">{esc(why)}</p>'
+        sections.append(("cells", f"Cells ({n_cells})", intro + panels))
+    sections.append(("run", "Run details", run_details_html(record)))
 
-    if cells is not None and len(cells) and frames is not None and len(frames):
-        q = _quantity(frames)
-        body.append("<h2>Traces by condition</h2>")
-        body.append(_figure_html(lambda ax: plot_traces_by_condition(frames, cells, ax=ax, quantity=q),
-                                 "traces by condition"))
-    if cells is not None and len(cells):
-        body.append("<h2>Onset distribution</h2>")
-        body.append(_figure_html(lambda ax: plot_onsets(cells, ax=ax), "onset distribution",
-                                 size=(7.5, 0.9 + 0.5 * cells["condition"].astype(str).nunique())))
-        n_panel = min(len(cells), _MAX_CELL_PANELS)
-        body.append(f"<h2>Cells ({n_panel} of {len(cells)} shown, flagged first)</h2>")
-        body.append(_cell_panels_html(cells, tabs))
-        body.append("<h2>All cells</h2>")
-        body.append(_cell_table_html(cells))
-
-    body.append("<h2>Failures</h2>")
-    body.append(_failures_html(record))
-
+    head = [f"<h1>{esc(title)}</h1>"]
+    facts = [f"{n_cells} cells", f"{len(conditions)} conditions"]
+    if resonator:
+        facts.append(f"resonator: {esc(resonator)}")
+    facts.append(f"kind: {esc(kind)}")
+    head.append(f'<p class="facts">{" &middot; ".join(facts)}</p>')
+    if experiment.get("synthetic"):
+        head.append('<div class="banner" role="note">Synthetic data: this experiment was generated by a '
+                    "simulator, not measured.</div>")
+    if experiment.get("description"):
+        head.append(f"<p>{esc(experiment['description'])}</p>")
+    head.append('<nav aria-label="sections"><ol>' + "".join(f'<li><a href="#{a}">{esc(h)}</a></li>'
+                                                           for a, h, _ in sections) + "</ol></nav>")
+    body = head + [f'<section id="{a}"><h2>{esc(h)}</h2>{content}</section>' for a, h, content in sections]
     page = ("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
-            f"<title>{_e(title)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n"
-            + "\n".join(body) + "\n</body>\n</html>\n")
+            '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
+            f"<title>{esc(title)}</title>\n<style>{CSS}</style>\n</head>\n<body>\n<main>\n"
+            + "\n".join(body) + f"\n</main>\n<script>{SCRIPT}</script>\n</body>\n</html>\n")
 
     target = run_dir / "report.html"
-    fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html.tmp", dir=run_dir)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(page)
-        os.chmod(tmp, 0o644)  # mkstemp creates the file private; a report is meant to be read
-        os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_path(target) as tmp:
+        tmp.write_text(page, encoding="utf-8")
+    logger.info("report written: %s (%d cells, %.0f kB, %.1f s)", target, n_cells, len(page.encode()) / 1024,
+                time.perf_counter() - t0)
     return target

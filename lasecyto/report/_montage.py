@@ -8,11 +8,12 @@ import numpy as np
 
 from ..exceptions import InputError
 from ._mpl import require_matplotlib
+from ._style import sequential_cmap
 
 __all__ = ["plot_pattern_montage"]
 
 
-def plot_pattern_montage(images, *, axes=None, ax=None, times_s=None, labels=None, cmap="magma", vmax=None,
+def plot_pattern_montage(images, *, axes=None, ax=None, times_s=None, labels=None, cmap=None, vmax=None,
                          n_cols=None):
     """Draw a cell's pattern images side by side.
 
@@ -29,7 +30,8 @@ def plot_pattern_montage(images, *, axes=None, ax=None, times_s=None, labels=Non
     labels : sequence of str, optional
         Extra text per image (e.g. the mode order).
     cmap, vmax : optional
-        Colour map and common upper limit (default: the largest finite value).
+        Colour map (default: the report's "ink to cream" map, readable in grey)
+        and common upper limit (default: the largest finite value).
     n_cols : int, optional
         Grid width when tiling on ``ax`` (default about sqrt(n)).
 
@@ -38,6 +40,8 @@ def plot_pattern_montage(images, *, axes=None, ax=None, times_s=None, labels=Non
     list of matplotlib Axes or matplotlib Axes
     """
     require_matplotlib()
+    if cmap is None:
+        cmap = sequential_cmap()
     if (axes is None) == (ax is None):
         raise InputError("give exactly one of axes= or ax=", field="axes, ax",
                          expected="a sequence of axes or one axes", found="both" if axes is not None else "neither")
@@ -97,5 +101,6 @@ def plot_pattern_montage(images, *, axes=None, ax=None, times_s=None, labels=Non
         t = title(i)
         if t:
             r, c = divmod(i, cols)
-            ax.text(c * (w + gap) + 1, r * (h + gap) + 1, t, color="white", fontsize="x-small", va="top")
+            ax.text(c * (w + gap) + 1, r * (h + gap) + 1, t, color="white", fontsize="x-small", va="top",
+                    bbox={"facecolor": "black", "alpha": 0.5, "linewidth": 0, "pad": 1.0})
     return ax

@@ -16,13 +16,6 @@ def require_matplotlib():
     return matplotlib
 
 
-def palette(n):
-    """``n`` distinct colours from matplotlib's qualitative 'tab10' map, cycling after ten."""
-    mpl = require_matplotlib()
-    cmap = mpl.colormaps["tab10"]
-    return [cmap(i % 10) for i in range(n)]
-
-
 _UNITS = {c.name: c.unit for cols in tables.SCHEMAS.values() for c in cols}
 _PRETTY_UNITS = {"um": "\u00b5m"}
 
@@ -31,8 +24,10 @@ def axis_label(column):
     """Axis label for a table column: its name in words and its unit from the schema."""
     unit = _UNITS.get(column, "")
     words = column
-    if unit and words.endswith("_" + unit):
-        words = words[: -len(unit) - 1]
+    for suffix in (unit.lower(), unit.lower().replace("/", "_per_")):
+        if suffix and words.lower().endswith("_" + suffix):
+            words = words[: -len(suffix) - 1]
+            break
     words = words.replace("_", " ")
     return f"{words} ({_PRETTY_UNITS.get(unit, unit)})" if unit else words
 

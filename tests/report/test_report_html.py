@@ -98,29 +98,39 @@ def test_report_is_self_contained_html(tmp_path):
     checker.feed(text)
     checker.close()
     assert checker.stack == []
-    assert "script" not in checker.tags and "<script" not in text.lower()
+    # one inline script, no external one; no URL outside the inline images and in-page links
+    assert text.lower().count("<script") == 1 and "<script>" in text
     outside_images = re.sub(r"data:image/png;base64,[A-Za-z0-9+/=]+", "", text).lower()
-    assert not re.search(r"https?:|//|url\(|@import", outside_images)    # no external URLs
-    # every image is an inline PNG: 2 experiment figures + kymograph and trace for 4 cells
-    assert len(checker.sources) == 2 + 2 * 4
-    for src in checker.sources:
-        assert src.startswith("data:image/png;base64,")
+    assert not re.search(r"https?:|//[a-z]|url\(|@import|@font-face", outside_images)
+    links = [s for s in checker.sources if not s.startswith("data:")]
+    assert links and all(s.startswith("#") for s in links)
+    ids = set(re.findall(r' id="([^"]+)"', text))
+    assert {s[1:] for s in links} <= ids                                    # every in-page link has a target
+    # every image is an inline PNG: traces by condition, onsets, and one panel per cell
+    images = [s for s in checker.sources if s.startswith("data:")]
+    assert len(images) == 2 + len(CELLS)
+    for src in images:
         assert base64.b64decode(src.split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
-    assert text.count('<img src="data:image/png;base64,') == 10
     # content
     assert "Synthetic data" in text
     assert "demo &lt;dish&gt; run" in text and "control &amp; &lt;vehicle&gt;" in text
-    table = text[text.index('<table id="cells">'):]
+    table = text[text.index('<table id="cell-table">'):]
     table = table[: table.index("</table>")]
-    for cid, *_ in CELLS:
-        assert f">{cid}<" in table
-    assert table.count("<tr>") == 1 + len(CELLS)
+    for i, (cid, *_rest) in enumerate(CELLS):
+        assert f'<a href="#cell-{i}">{cid}</a>' in table
+    assert table.count("<tr") == 1 + len(CELLS)
+    assert table.count('data-flagged="1"') == 1
     assert "cell-x9" in text and "no lasing lines in any frame" in text
-    # drug: 1 of 2 flagged; Wilson 95 % interval of 1/2 is 0.09 - 0.91
-    assert "<td>0.50</td><td>0.09 &ndash; 0.91</td>" in text
-    # the flagged cell's panel comes first
-    panels = re.findall(r"<h3>([^<&]+?) &middot;", text)
-    assert panels[0].strip() == "cell-a1" and len(panels) == 4
+    # drug: 1 of 2 flagged; Wilson 95 % score interval of 1/2: 0.5 +- 1.96 sqrt(0.25/2 + 1.96^2/16) / (1 + 1.96^2/2)
+    # = 0.095 - 0.905 (Wilson 1927, J. Am. Stat. Assoc. 22, 209; the formula is checked in tests/features)
+    assert "<td>1</td><td>0.50</td><td>0.09 &ndash; 0.91</td>" in text
+    # panels grouped by condition (sorted: no control named), the flagged cell first in its group
+    groups = [g for g in re.findall(r"<summary>([^<]+)</summary>", text) if " cells, " in g]
+    assert groups == ["control: 1 cells, 0 flagged", "control &amp; &lt;vehicle&gt;: 1 cells, 0 flagged",
+                      "drug: 2 cells, 1 flagged"]
+    panels = re.findall(r'<section class="cell" id="(cell-\d+)"', text)
+    assert sorted(panels) == [f"cell-{i}" for i in range(len(CELLS))]
+    assert panels.index("cell-0") < panels.index("cell-1")
     assert [p.name for p in run_dir.iterdir() if p.name.endswith(".tmp")] == []
 
 
@@ -132,7 +142,7 @@ def test_report_takes_tables_and_tolerates_a_sparse_record(tmp_path):
     text = path.read_text(encoding="utf-8")
     assert "<title>My run</title>" in text and "Synthetic data" not in text
     assert "No failed items" in text
-    # without lines or tracks: 2 experiment figures + one trace per cell
+    # without lines or tracks: 2 experiment figures + one panel (the trace) per cell
     assert text.count('<img src="data:image/png;base64,') == 2 + 4
     # a second write replaces the report
     assert write_html_report(tmp_path, tables={"cells": tabs["cells"]}).read_text().count("<img") == 1
