@@ -34,7 +34,7 @@ details{margin:.5em 0}summary{cursor:pointer;font-weight:600;padding:.2em 0}
 section.cell{border-top:1px solid var(--rule);padding:.4em 0 .6em}
 section.cell h4{margin:.2em 0;font-size:.98em;font-weight:600}
 .tablewrap{overflow-x:auto;max-height:80vh;overflow-y:auto;border:1px solid var(--rule)}
-.tablewrap table{margin:0}
+.tablewrap table{margin:0}.tablewrap td{white-space:nowrap}
 #cell-table thead th{position:sticky;top:0;z-index:1}
 #cell-table th button{all:unset;cursor:pointer;display:block;width:100%;padding:0}
 #cell-table th button::after{content:" \\2195";color:var(--muted)}

@@ -28,7 +28,7 @@ def family_labels(tracks):
 
     A bead's family is named by polarization and radial order ("TE 1"), a
     Fabry-Perot family by its transverse order ("k=0") when known, otherwise
-    "family N".
+    "family N"; tracks in no family (-1) are "tracked modes".
     """
     out = {}
     for family, g in tracks.groupby("mode_family", sort=True):
@@ -40,6 +40,8 @@ def family_labels(tracks):
             label = f"{pol} {radial}" if radial > 0 else pol
         elif order >= 0:
             label = f"k={order}"
+        elif int(family) < 0:
+            label = "tracked modes"
         out[family] = label
     return out
 
@@ -171,6 +173,10 @@ def plot_trace(cell_frames, *, ax, quantity="index_change", onset_s=None, onset_
             ax.axvspan(onset_s - onset_err_s, onset_s + onset_err_s, color=ONSET_COLOUR, alpha=0.15, linewidth=0)
     ax.set_xlabel(axis_label("time_s"))
     ax.set_ylabel(axis_label(quantity))
+    from matplotlib.ticker import ScalarFormatter
+
+    if quantity.endswith(("_um", "_index")):  # absolute values: full numbers, no offset above the axis
+        ax.yaxis.set_major_formatter(ScalarFormatter(useOffset=False))
     handles, _ = ax.get_legend_handles_labels()
     if handles:
         ax.legend(loc="best", fontsize="x-small", frameon=False)

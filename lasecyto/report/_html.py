@@ -153,7 +153,7 @@ def _panel_groups(cells, run, record, conditions, anchors, *, kind, resonator, t
                 body = img_tag(fig, f"panel of cell {cid}", dpi=dpi, lazy=True)
             body += "".join(f'<p class="note">{esc(n)}</p>' for n in notes)
             parts.append(f'<section class="cell" id="{anchors[cid]}" aria-label="cell {esc(cid)}">'
-                         f"<h4>{cell_heading_html(cell)}</h4>{body}</section>")
+                         f"<h4>{cell_heading_html(cell, verdict=kind != 'pump-series')}</h4>{body}</section>")
         k = int(changed[cond == c].sum())
         groups.append(f"<details{open_attr}><summary>{esc(c)}: {rows.size} cells, {k} flagged</summary>"
                       + "".join(parts) + "</details>")
@@ -266,6 +266,9 @@ def write_html_report(run_dir, *, tables=None, title=None) -> Path:
                       "(solid, shaded by its uncertainty)")
         intro += ("; where images exist, patches of its emission pattern (* marks a pattern change). "
                   "Flagged cells come first in each condition.</p>")
+        if kind == "pump-series":
+            intro += ('<p class="caution" role="note">Pump energies and fluences: read the '
+                      '<a href="#thresholds">laser-safety cautions</a> under Lasing thresholds.</p>')
         if why:
             intro += f'<p class="note">{esc(why)}</p>'
         sections.append(("cells", f"Cells ({n_cells})", intro + panels))

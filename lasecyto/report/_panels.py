@@ -1,6 +1,6 @@
 """One compact figure per cell: kymograph, trace(s) or threshold curves, and its pattern montage.
 
-Each panel is one PNG of fixed size (about 950 x 250 pixels, plus a strip of
+Each panel is one PNG of fixed size (10.5 x 2.7 inches: 840 x 216 pixels at 80 dpi, plus a strip of
 emission-pattern patches for a cell seen by a camera), drawn from one cell's
 rows of ``lines``, ``tracks``, ``cell_frames`` and ``patterns``.
 """
@@ -271,8 +271,7 @@ def draw_cell_panel(data, cell, *, kind, resonator, fits=None, images=None, wind
     if n_top == 0 and montage is None:
         return None, notes + ["no lines, frames or images to draw for this cell"]
     height = (_TOP_IN if n_top else 0.0) + (_MONTAGE_IN if montage is not None else 0.0)
-    fig = new_figure(_WIDTH_IN, height)
-    fig.get_layout_engine().set(w_pad=0.02, h_pad=0.02, wspace=0.03, hspace=0.03)
+    fig = new_figure(_WIDTH_IN, height, layout=None)  # fixed margins: every panel has the same layout
     if n_top and montage is not None:
         top, bottom = fig.subfigures(2, 1, height_ratios=[_TOP_IN, _MONTAGE_IN])
     elif n_top:
@@ -281,7 +280,12 @@ def draw_cell_panel(data, cell, *, kind, resonator, fits=None, images=None, wind
         top, bottom = None, fig
     if n_top:
         widths = ([1.35] if has_kymo else []) + [1.0] * len(traces) + ([1.2] if has_curve else [])
-        axes = list(np.atleast_1d(top.subplots(1, n_top, width_ratios=widths)))
+        # margins in inches (labels, tick labels, the colour bar's label), as fractions of this subfigure
+        left, right, gap = 0.75, 0.1, 1.75  # the gap holds a colour bar's label and the next axis' labels
+        mean_width = (_WIDTH_IN - left - right - (n_top - 1) * gap) / n_top
+        axes = list(np.atleast_1d(top.subplots(1, n_top, width_ratios=widths, gridspec_kw={
+            "left": left / _WIDTH_IN, "right": 1 - right / _WIDTH_IN, "bottom": 0.5 / _TOP_IN,
+            "top": 1 - 0.25 / _TOP_IN, "wspace": gap / mean_width})))
         if has_kymo:
             time_col = "time_s"
             pts, tr = kymo_points, data.tracks
@@ -299,6 +303,6 @@ def draw_cell_panel(data, cell, *, kind, resonator, fits=None, images=None, wind
             plot_threshold_curves(points, fits, ax=axes.pop(0))
     if montage is not None:
         patches, times, labels = montage
-        axes = bottom.subplots(1, MONTAGE_FRAMES)
-        plot_pattern_montage(patches, axes=axes, times_s=times, labels=labels)
+        # one axes holding the patches side by side: far cheaper to lay out than one axes per patch
+        plot_pattern_montage(patches, ax=bottom.add_axes((0.75 / _WIDTH_IN, 0.03, 1 - 0.85 / _WIDTH_IN, 0.94)), times_s=times, labels=labels, n_cols=len(patches))
     return fig, notes

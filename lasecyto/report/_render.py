@@ -16,11 +16,11 @@ import io
 __all__ = ["figure_png", "img_tag", "new_figure"]
 
 
-def new_figure(width_in, height_in):
-    """A matplotlib Figure (not registered with pyplot) with constrained layout."""
+def new_figure(width_in, height_in, *, layout="constrained"):
+    """A matplotlib Figure (not registered with pyplot), by default with constrained layout."""
     from matplotlib.figure import Figure
 
-    return Figure(figsize=(width_in, height_in), layout="constrained")
+    return Figure(figsize=(width_in, height_in), layout=layout)
 
 
 def figure_png(fig, *, dpi=90):

@@ -66,7 +66,7 @@ def summary_html(cells, record, conditions):
     self_changed = cells["self_changed"].fillna(False).to_numpy(bool) if "self_changed" in cells.columns \
         else changed
     cond = cells["condition"].astype(str).to_numpy()
-    items = [it for it in record.get("items") or [] if isinstance(it, dict) and it.get("item") != "lamp"]
+    items = [it for it in record.get("items") or [] if isinstance(it, dict)]
     failed = sum(1 for it in items if str(it.get("status", "")).lower() in FAILED_STATUSES)
     rows = []
     for c in conditions:
@@ -188,8 +188,8 @@ def classifier_html(record):
     if clf.get("note"):
         out.append(f'<p class="note">{esc(clf["note"])}</p>')
     metrics = [("label predicted", esc(clf.get("label", ""))), ("estimator", esc(clf.get("estimator", ""))),
-               ("cross-validation", f"{esc(clf.get('n_splits', '?'))} folds, whole "
-                                    f"{esc(clf.get('grouped_by', 'group'))}s held out")]
+               ("cross-validation", f"{esc(clf.get('n_splits', '?'))} folds, each holding out whole groups "
+                                    f"(by {esc(clf.get('grouped_by', 'group'))})")]
     if "n_cells" in clf:
         metrics.append(("cells / features", f"{esc(clf.get('n_cells'))} / {esc(clf.get('n_features', '?'))}"))
     if _finite(clf.get("roc_auc")):
@@ -343,7 +343,7 @@ def cell_table_html(cells, *, anchors, pump=False):
             cells_html.append(f"<td{cls}{data}>{values[i]}</td>")
         body.append(f'<tr data-flagged="{int(changed[i])}">' + "".join(cells_html) + "</tr>")
     controls = ('<div class="controls" role="group" aria-label="table filters">'
-                '<label>Filter rows <input type="search" id="cell-filter" placeholder="cell, dish, condition, ..."'
+                '<label>Filter rows <input type="search" id="cell-filter" title="text in any column: cell, dish, condition, ..."'
                 ' aria-controls="cell-table"></label>'
                 '<label><input type="checkbox" id="flagged-only" aria-controls="cell-table"> flagged cells only'
                 '</label><span id="cell-table-status" role="status" aria-live="polite"></span></div>')
@@ -352,13 +352,13 @@ def cell_table_html(cells, *, anchors, pump=False):
             + "".join(head) + "</tr></thead><tbody>" + "".join(body) + "</tbody></table></div>")
 
 
-def cell_heading_html(cell):
-    """The one-line heading of a cell's panel."""
+def cell_heading_html(cell, *, verdict=True):
+    """The one-line heading of a cell's panel (``verdict=False``: without changed / not changed)."""
     parts = [f"<strong>{esc(cell['cell_id'])}</strong>", esc(cell.get("condition", "")),
              f"dish {esc(cell.get('dish', ''))}"]
-    if bool(cell.get("changed", False)):
+    if verdict and bool(cell.get("changed", False)):
         parts.append('<span class="flag">changed</span>')
-    else:
+    elif verdict:
         parts.append("not changed")
     q = str(cell.get("quantity", "") or "")
     if _finite(cell.get("index_change")):
