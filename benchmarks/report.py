@@ -34,11 +34,13 @@ def _run(manifest, out):
 
 
 def _report(run_dir):
-    code = ("import resource, sys, time\n"
+    # VmHWM (Linux) is the peak of this process image; ru_maxrss would carry the parent's peak over exec
+    code = ("import sys, time\n"
             "from lasecyto.report import write_html_report\n"
             "t = time.perf_counter()\n"
             "write_html_report(sys.argv[1])\n"
-            "print(time.perf_counter() - t, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n")
+            "hwm = [ln.split()[1] for ln in open('/proc/self/status') if ln.startswith('VmHWM')][0]\n"
+            "print(time.perf_counter() - t, hwm)\n")
     out = subprocess.run([sys.executable, "-c", code, str(run_dir)], check=True, capture_output=True, text=True)
     seconds, rss_kb = out.stdout.split()
     return float(seconds), (Path(run_dir) / "report.html").stat().st_size, int(rss_kb) / 1024

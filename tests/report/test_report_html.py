@@ -160,3 +160,46 @@ def test_report_rejects_a_broken_record(tmp_path):
     with pytest.raises(InputError, match="run_record.json"):
         write_html_report(tmp_path)
     assert not (tmp_path / "report.html").exists()
+
+
+def test_tables_are_read_one_cell_at_a_time(tmp_path):
+    """Row groups holding several cells, and a cell spread over two groups, give each cell's rows whole."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from lasecyto.report._read import RunTables
+
+    frames = _make_tables()["cell_frames"]
+    order = frames.sort_values(["cell_id", "frame"], kind="stable").reset_index(drop=True)
+    (tmp_path / "tables").mkdir()
+    # 160 rows in groups of 50: groups span cells and cells span groups
+    pq.write_table(pa.Table.from_pandas(order, preserve_index=False), tmp_path / "tables" / "cell_frames.parquet",
+                   row_group_size=50)
+    run = RunTables(tmp_path)
+    for cid, *_rest in CELLS:
+        got = run.cell("cell_frames", cid, ["time_s", "index_change", "no_such_column"])
+        want = order[order.cell_id == cid][["cell_id", "time_s", "index_change"]].reset_index(drop=True)
+        pd.testing.assert_frame_equal(got.reset_index(drop=True), want)
+    assert run.cell("cell_frames", "cell-zz", ["time_s"]) is None
+    assert run.whole("cells") is None
+    with pytest.raises(Exception, match="read per cell"):
+        run.whole("cell_frames")
+
+
+def test_pump_series_report_shows_thresholds_beside_the_cautions(pump_run):
+    from lasecyto.safety import CAUTIONS
+
+    text = write_html_report(pump_run.out_dir).read_text(encoding="utf-8")
+    section = text[text.index('<section id="thresholds">'):]
+    section = section[: section.index("</section>")]
+    # the cautions come first in the section that shows pump energies and fluences
+    assert section.index('class="caution"') < section.index("threshold fluence")
+    assert "ANSI Z136.1" in section and "IEC 60825-1" in section and "laser safety officer" in section
+    assert CAUTIONS.splitlines()[0].strip() in text
+    n_fits = len(pump_run.tables["thresholds"])
+    assert section.count("<tr>") >= n_fits
+    # each cell's panel holds the kymograph against pump energy and the S-curves: one image per cell
+    n_cells = len(pump_run.tables["cells"])
+    assert text.count('<section class="cell"') == n_cells
+    assert text.count('alt="panel of cell') == n_cells
+    assert "not changed" not in text.split('<section id="cells">')[1]
