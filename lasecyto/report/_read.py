@@ -4,10 +4,11 @@ Memory rule: the small tables (``cells``, ``thresholds``) are read whole; of
 ``lines``, ``tracks``, ``cell_frames`` and ``patterns`` the report reads one
 cell at a time and only the columns it draws.  A run writes one Parquet row
 group per cell (``io.write_table_parts``); the row groups that may hold a cell
-are found from their ``cell_id`` statistics, and the one row group last read
-is kept (split by cell) so that a row group holding many cells is decoded
-once.  Memory is therefore bounded by the largest row group of the drawn
-columns, whatever the number of cells.
+are found from their ``cell_id`` statistics (a dict look-up for groups of one
+cell), and the one row group last read is kept (split by cell) so that a row
+group holding many cells is decoded once for consecutive reads of its cells.
+Memory is therefore bounded by the largest row group of the drawn columns,
+whatever the number of cells.
 """
 
 from __future__ import annotations
@@ -66,10 +67,15 @@ class _FileSource:
         meta = self._file.metadata
         self.n_rows = meta.num_rows
         idx = self.columns.index("cell_id")
+        # groups of one cell (what a run writes) are found by a dict look-up; groups spanning
+        # several cells, or without statistics, are checked one by one
+        self._single = {}
         self._groups = []
         for g in range(meta.num_row_groups):
             stats = meta.row_group(g).column(idx).statistics
-            if stats is not None and stats.has_min_max:
+            if stats is not None and stats.has_min_max and str(stats.min) == str(stats.max):
+                self._single.setdefault(str(stats.min), []).append(g)
+            elif stats is not None and stats.has_min_max:
                 self._groups.append((g, str(stats.min), str(stats.max)))
             else:
                 self._groups.append((g, None, None))
@@ -79,10 +85,10 @@ class _FileSource:
         return self._file.read(columns=columns).to_pandas()
 
     def cell(self, cell_id, columns):
+        groups = list(self._single.get(cell_id, ()))
+        groups += [g for g, low, high in self._groups if low is None or low <= cell_id <= high]
         parts = []
-        for g, low, high in self._groups:
-            if low is not None and not (low <= cell_id <= high):
-                continue
+        for g in sorted(groups):
             split = self._group(g, columns)
             if cell_id in split:
                 parts.append(split[cell_id])

@@ -84,6 +84,7 @@ def test_report_renders_and_sorts_in_chromium(fp_run, tmp_path):
             button.click()
             values_down = [float(k) for k in _order(page, col) if k != "nan"]
             assert values_down == sorted(values, reverse=True)
+            page.locator("#cell-list").screenshot(path=str(tmp_path / "cell-table-by-onset.png"))
 
             # ... and by a text column from the keyboard (focus, Enter)
             first = page.locator("#cell-table thead th").nth(0).locator("button")
@@ -108,14 +109,16 @@ def test_report_renders_and_sorts_in_chromium(fp_run, tmp_path):
             panel.scroll_into_view_if_needed()
             page.wait_for_function(f"document.querySelector('section#{target} img').complete")
             assert page.eval_on_selector(f"section#{target} img", "img => img.naturalWidth") > 100
+            page.locator(f"section#{target}").screenshot(path=str(tmp_path / "cell-panel.png"))
 
             page.evaluate("window.scrollTo(0, 0)")
             shot = tmp_path / "report.png"
             page.screenshot(path=str(shot), full_page=False)
         finally:
             context.close()
-    print(f"screenshot of the report: {shot}")
-    assert shot.stat().st_size > 10_000
+    shots = [shot, tmp_path / "cell-table-by-onset.png", tmp_path / "cell-panel.png"]
+    print("screenshots of the report: " + ", ".join(str(s) for s in shots))
+    assert all(s.stat().st_size > 10_000 for s in shots)
     assert errors == []
     external = [u for u in requests if not u.startswith(("file:", "data:", "about:"))]
     assert external == []
