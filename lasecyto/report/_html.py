@@ -50,7 +50,7 @@ FULL_DPI_MAX = 100
 FULL_DPI = 80
 SMALL_DPI = 60
 _QUANTITY_WORDS = {"index_change": "refractive-index change", "relative_shift": "relative wavelength shift",
-                   "diameter_um": "bead diameter", "medium_index": "medium refractive index",
+                   "diameter_change_um": "change of the bead diameter", "medium_index": "medium refractive index",
                    "pattern_baseline_corr": "pattern correlation with the baseline"}
 
 
@@ -63,13 +63,11 @@ def _overview_quantity(cells, run, resonator, kind):
     if kind == "pump-series" or not run.has("cell_frames"):
         return None
     available = set(run.columns("cell_frames"))
-    candidates = []
-    if resonator == "sphere":
-        candidates.append("diameter_um")
+    candidates = []  # changes from each cell's own baseline overlay well; absolute bead diameters do not
     if "quantity" in cells.columns:
         counted = Counter(q for q in cells["quantity"].astype(str) if q and q != "nan")
         candidates += [q for q, _n in counted.most_common()]
-    candidates += ["index_change", "relative_shift"]
+    candidates += ["index_change", "relative_shift", "diameter_change_um", "pattern_baseline_corr"]
     for q in candidates:
         if q in available:
             return q
@@ -82,7 +80,13 @@ def _figure(draw, alt, size, *, dpi=FULL_DPI):
     return img_tag(fig, alt, dpi=dpi)
 
 
-def _traces_section(cells, run, quantity, conditions):
+def _quantity_words(quantity, resonator):
+    if quantity == "index_change" and resonator == "sphere":
+        return "change of the medium's refractive index"
+    return _QUANTITY_WORDS.get(quantity, quantity.replace("_", " "))
+
+
+def _traces_section(cells, run, quantity, conditions, resonator):
     parts = []
     for cid in cells["cell_id"].astype(str):
         cf = run.cell("cell_frames", cid, ["time_s", "lasing", quantity])
@@ -94,7 +98,7 @@ def _traces_section(cells, run, quantity, conditions):
     if not parts:
         return None
     frames = pd.concat(parts, ignore_index=True)
-    words = _QUANTITY_WORDS.get(quantity, quantity.replace("_", " "))
+    words = _quantity_words(quantity, resonator)
     img = _figure(lambda ax: plot_traces_by_condition(frames, cells, ax=ax, quantity=quantity,
                                                       conditions=conditions),
                   f"{words} of every cell against time, by condition", (9.0, 3.8))
@@ -153,7 +157,7 @@ def _panel_groups(cells, run, record, conditions, anchors, *, kind, resonator, t
                 body = img_tag(fig, f"panel of cell {cid}", dpi=dpi, lazy=True)
             body += "".join(f'<p class="note">{esc(n)}</p>' for n in notes)
             parts.append(f'<section class="cell" id="{anchors[cid]}" aria-label="cell {esc(cid)}">'
-                         f"<h4>{cell_heading_html(cell, verdict=kind != 'pump-series')}</h4>{body}</section>")
+                         f"<h4>{cell_heading_html(cell, verdict=kind != 'pump-series', resonator=resonator)}</h4>{body}</section>")
         k = int(changed[cond == c].sum())
         groups.append(f"<details{open_attr}><summary>{esc(c)}: {rows.size} cells, {k} flagged</summary>"
                       + "".join(parts) + "</details>")
@@ -234,7 +238,7 @@ def write_html_report(run_dir, *, tables=None, title=None) -> Path:
     if n_cells:
         quantity = _overview_quantity(cells, run, resonator, kind)
         if quantity is not None:
-            html_ = _traces_section(cells, run, quantity, conditions)
+            html_ = _traces_section(cells, run, quantity, conditions, resonator)
             if html_:
                 sections.append(("traces", "Traces by condition", html_))
         if kind != "pump-series" and "onset_s" in cells.columns:

@@ -286,10 +286,12 @@ def cell_table_html(cells, *, anchors, pump=False):
         add("per-cell rule", "text", ["yes" if c else "no" for c in sc], title="significant against own baseline")
     numeric = [("quantity", "text", None), ("index_change", "num", ".3g"), ("index_change_err", "num", ".2g"),
                ("change_z", "num", ".3g"), ("change_score", "num", ".3g"), ("q_value", "num", ".2g"),
-               ("onset_s", "num", ".4g"), ("onset_err_s", "num", ".2g")]
+               ("onset_s", "num", ".4g"), ("onset_err_s", "num", ".2g"), ("baseline_diameter_um", "num", ".4g"),
+               ("diameter_change_um", "num", ".3g")]
     headers = {"index_change": "change", "index_change_err": "&plusmn;", "change_z": "z",
                "change_score": "score vs controls", "q_value": "q", "onset_s": "onset (s)",
-               "onset_err_s": "&plusmn; (s)", "quantity": "judged on"}
+               "onset_err_s": "&plusmn; (s)", "quantity": "judged on", "baseline_diameter_um": "bead (&micro;m)",
+               "diameter_change_um": "bead change (&micro;m)"}
     for col, kind, spec in numeric:
         if col not in cells.columns:
             continue
@@ -352,7 +354,7 @@ def cell_table_html(cells, *, anchors, pump=False):
             + "".join(head) + "</tr></thead><tbody>" + "".join(body) + "</tbody></table></div>")
 
 
-def cell_heading_html(cell, *, verdict=True):
+def cell_heading_html(cell, *, verdict=True, resonator=""):
     """The one-line heading of a cell's panel (``verdict=False``: without changed / not changed)."""
     parts = [f"<strong>{esc(cell['cell_id'])}</strong>", esc(cell.get("condition", "")),
              f"dish {esc(cell.get('dish', ''))}"]
@@ -364,10 +366,14 @@ def cell_heading_html(cell, *, verdict=True):
     if _finite(cell.get("index_change")):
         what = {"index_change": "index change", "relative_shift": "relative shift",
                 "pattern_baseline_corr": "pattern correlation change"}.get(q, q.replace("_", " ") or "change")
+        if q == "index_change" and resonator == "sphere":
+            what = "medium index change"
         text = f"{what} {fmt(cell['index_change'], '.3g', signed=True)}"
         if _finite(cell.get("change_z")):
             text += f" (z {fmt(cell['change_z'], '.3g')})"
         parts.append(text)
+    if _finite(cell.get("diameter_change_um")):
+        parts.append(f"diameter change {fmt(cell['diameter_change_um'], '.3g', signed=True)} &micro;m")
     if _finite(cell.get("onset_s")):
         parts.append(f"onset {fmt(cell['onset_s'], '.4g')} &plusmn; {fmt(cell.get('onset_err_s'), '.2g')} s")
     if _finite(cell.get("threshold_nj")):
