@@ -27,10 +27,11 @@ class Column:
     kind: str  # "int", "float", "bool", "str"
     unit: str  # "" for dimensionless
     description: str
+    default: object = None  # a column with a default is filled with it when absent (added later)
 
 
-def _c(name, kind, unit, description):
-    return Column(name, kind, unit, description)
+def _c(name, kind, unit, description, default=None):
+    return Column(name, kind, unit, description, default)
 
 
 _LINES = (
@@ -54,6 +55,9 @@ _LINES = (
     _c("saturated", "bool", "", "a pixel of the fit window reached the saturation level"),
     _c("fit_ok", "bool", "", "the fit converged to a physical solution"),
     _c("fit_message", "str", "", "empty when fit_ok, else the reason"),
+    _c("cosmic_ray", "bool", "", "narrower than the instrument function and in one frame only (never lasing)",
+       default=False),
+    _c("contrast", "float", "", "peak line signal over the background under it", default=float("nan")),
 )
 
 _TRACKS = _LINES + (
@@ -140,6 +144,10 @@ def validate(table: pd.DataFrame, name: str, *, path=None) -> pd.DataFrame:
         raise SchemaError("not a table", path=where, expected="a pandas DataFrame",
                           found=type(table).__name__)
     cols = _schema(name)
+    absent = [c for c in cols if c.name not in table.columns and c.default is not None]
+    if absent:  # columns added to a schema later: tables written before them get the default
+        table = table.assign(**{c.name: np.full(len(table), c.default, dtype=_KIND_DTYPE[c.kind])
+                                for c in absent})
     missing = [c.name for c in cols if c.name not in table.columns]
     if missing:
         raise SchemaError("missing columns", path=where, field=", ".join(missing),

@@ -27,7 +27,7 @@ JOINT_OVERLAP = 2.0
 #: largest number of lines in one jointly fitted group
 MAX_GROUP = 4
 #: convergence: an undamped step moving every parameter by less than this many sigma ends the fit
-STEP_TOL_SIGMA = 1e-2
+STEP_TOL_SIGMA = 0.1
 #: chi-square improvement needed to split one fitted line into a blend of two
 BLEND_DCHI2 = 25.0
 
@@ -42,10 +42,10 @@ class LineFits:
     Cramer-Rao bound evaluated at the fitted parameters).  ``fwhm_px`` is the
     fitted FWHM; for the Voigt shape the Olivero & Longbothum (1977) FWHM of
     the fitted components ``fwhm_lorentzian_px`` and ``fwhm_gaussian_px``
-    (NaN for the other shapes); for the instrument shape, whose width is not
-    fitted, a one-step (score) estimate of a stretch of the instrument profile
-    at the solution times its FWHM, used to judge whether a line is wider than
-    the instrument.
+    (NaN for the other shapes); for the instrument shape, whose width is held
+    at the instrument's in the fit, the maximum-likelihood stretch of the
+    profile (from a second fit with it freed) times the instrument FWHM, used
+    to judge whether a line is wider than the instrument.
     """
 
     spectrum: np.ndarray

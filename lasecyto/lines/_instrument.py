@@ -119,12 +119,12 @@ def _fwhm(coef, start, step, half):
 
 
 def instrument_profile_from_samples(offset_px, value, weight=None, *, half_width_px, step_px=DEFAULT_STEP_PX,
-                                    smoothing=1.0, n_lines=0):
+                                    smoothing=None, n_lines=0):
     """Fit the pixel-integrated profile to samples ``(d, P(d))`` by a penalised B-spline.
 
-    Minimises ``sum w (value - P(d))^2 + smoothing * sum (second difference of the
-    coefficients)^2`` (Eilers & Marx 1996) with coefficients forced to zero
-    at both ends, then normalises: the profile is re-centred on its centroid and
+    Minimises ``sum w (value - P(d))^2 + smoothing * mean(w) * sum (second
+    difference of the coefficients)^2`` (Eilers & Marx 1996, Statist. Sci. 11,
+    89) with coefficients forced to zero at both ends, then normalises: the profile is re-centred on its centroid and
     scaled so that the pixels of any placement collect the whole line.
 
     Parameters
@@ -139,8 +139,9 @@ def instrument_profile_from_samples(offset_px, value, weight=None, *, half_width
         Support of the profile; samples farther out are ignored.
     step_px : float
         Knot spacing (default 0.25 px: oversampling 4).
-    smoothing : float
-        Weight of the roughness penalty relative to the data (in units of the mean weight).
+    smoothing : float, optional
+        Weight of the roughness penalty relative to the data (in units of the
+        mean weight); default: chosen by generalised cross-validation.
     n_lines : int
         Recorded in the result.
 
@@ -166,15 +167,31 @@ def instrument_profile_from_samples(offset_px, value, weight=None, *, half_width
                          expected=f"at least {n_coef} samples within +-{half_width_px:g} px",
                          found=f"{d.size} samples")
     basis = _bspline_basis(d, start, step_px, n_coef)
-    wb = basis * w[:, None]
-    lhs = basis.T @ wb
-    rhs = wb.T @ v
-    diff = np.diff(np.eye(n_coef), 2, axis=0)
-    lhs += smoothing * float(np.mean(w)) * (diff.T @ diff)
     # the profile vanishes at the ends of its support: drop the two outer coefficients on each side
     inner = np.arange(2, n_coef - 2)
+    b_in = basis[:, inner]
+    wb = b_in * w[:, None]
+    data = b_in.T @ wb
+    rhs = wb.T @ v
+    diff = np.diff(np.eye(inner.size), 2, axis=0)
+    penalty = float(np.mean(w)) * (diff.T @ diff)
+
+    def solve(lam):
+        return linalg.solve(data + lam * penalty, rhs, assume_a="pos")
+
+    if smoothing is None:
+        # generalised cross-validation over a grid of penalties (Eilers & Marx 1996, section 8)
+        best = None
+        for lam in 10.0 ** np.arange(-5.0, 2.01, 0.5):
+            a_inv = linalg.inv(data + lam * penalty)
+            resid = v - b_in @ (a_inv @ rhs)
+            trace = float(np.sum(a_inv * data))
+            gcv = d.size * float(np.sum(w * resid * resid)) / max(d.size - trace, 1.0) ** 2
+            if best is None or gcv < best[0]:
+                best = (gcv, lam)
+        smoothing = best[1]
     coef = np.zeros(n_coef)
-    coef[inner] = linalg.solve(lhs[np.ix_(inner, inner)], rhs[inner], assume_a="pos")
+    coef[inner] = solve(float(smoothing))
     # normalise: centroid at 0, and the pixels collect the whole line (sum over integer shifts = 1)
     grid = np.arange(-math.ceil(half_width_px) - 2, math.ceil(half_width_px) + 3, dtype=float)
     phases = np.linspace(-0.5, 0.5, 21)[:-1]

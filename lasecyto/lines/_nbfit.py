@@ -32,6 +32,9 @@ _NOCONV, _BOUND, _AREA, _LEFT, _SINGULAR, _NONFINITE = 1, 2, 3, 4, 5, 6
 
 #: the largest number of lines fitted jointly
 MAX_K = 4
+#: instrument shape: a single line is tried as a blend of two only while its width diagnostic is below this
+#: many instrument FWHM (two instrument-limited lines closer than 1.5 FWHM look at most about this wide)
+BLEND_MAX_STRETCH = 2.0
 #: smallest component width of a Voigt (px): a component may vanish without a bound flag
 VOIGT_MIN_COMPONENT_PX = 0.01
 #: a Fisher matrix scaled to unit diagonal is singular when its inverse has a diagonal above this
@@ -58,9 +61,9 @@ _GFIRST, _GSIZE, _GLO, _GLEN = range(4)
 # per-pixel fields
 _Y, _EX, _TOT, _TOT2, _NBM, _RES, _VAR, _SCORE, _HGT, _MU, _WT, _R, _WR, _WH, _MF = range(15)
 _NWF = 15
-_PMAX = MAX_K * 4 + 4 + MAX_K  # line parameters, background, stretch columns
+_PMAX = MAX_K * 4 + 4  # line parameters, background
 # small vectors
-_G, _G2, _TRIAL, _STEP, _SCALE, _RHS, _SDELTA, _SVAR, _ERRS, _THETA = range(10)
+_G, _G2, _TRIAL, _STEP, _SCALE, _RHS, _ERRS, _THETA, _SUMS, _THETA2 = range(10)
 
 Workspace = namedtuple("Workspace", ["lf", "li", "gi", "wf", "mask", "lt", "edges", "jr", "mats", "vecs",
                                      "free", "det", "members", "tmp_f", "tmp_i", "snap", "order", "key",
@@ -134,10 +137,11 @@ def _damped_step(fm, g, lam, p, free, work, low, scale, rhs, step):
     if not ok:
         for i in range(p):
             step[i] = 0.0
-        return
+        return False
     _chol_solve(low, p, rhs, step)
     for i in range(p):
         step[i] = step[i] * scale[i] if free[i] else 0.0
+    return True
 
 
 @njit(cache=True)
@@ -208,55 +212,97 @@ def _load_window(lo, length, k, cfg, resid, base, has_base, finite, use_nbm, ws)
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FAST)
-def _evaluate(theta, k, cfg, x0, n, prof, observed, stretch, ws, tot, fm, g):
+def _block(n, wgt, r0, r1, r2, r3, q0, q1, q2, q3, out):
+    """out[p, q] = sum_i wgt_i r_p[i] q_q[i] for two sets of four rows (one fused pass, vectorises)."""
+    s00 = s01 = s02 = s03 = s10 = s11 = s12 = s13 = 0.0
+    s20 = s21 = s22 = s23 = s30 = s31 = s32 = s33 = 0.0
+    for i in range(n):
+        w = wgt[i]
+        a0 = w * r0[i]
+        a1 = w * r1[i]
+        a2 = w * r2[i]
+        a3 = w * r3[i]
+        b0, b1, b2, b3 = q0[i], q1[i], q2[i], q3[i]
+        s00 += a0 * b0
+        s01 += a0 * b1
+        s02 += a0 * b2
+        s03 += a0 * b3
+        s10 += a1 * b0
+        s11 += a1 * b1
+        s12 += a1 * b2
+        s13 += a1 * b3
+        s20 += a2 * b0
+        s21 += a2 * b1
+        s22 += a2 * b2
+        s23 += a2 * b3
+        s30 += a3 * b0
+        s31 += a3 * b1
+        s32 += a3 * b2
+        s33 += a3 * b3
+    out[0, 0], out[0, 1], out[0, 2], out[0, 3] = s00, s01, s02, s03
+    out[1, 0], out[1, 1], out[1, 2], out[1, 3] = s10, s11, s12, s13
+    out[2, 0], out[2, 1], out[2, 2], out[2, 3] = s20, s21, s22, s23
+    out[3, 0], out[3, 1], out[3, 2], out[3, 3] = s30, s31, s32, s33
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FAST)
+def _rowsums(n, wgt, r0, r1, r2, r3, out):
+    """out[p] = sum_i wgt_i r_p[i] for four rows."""
+    s0 = s1 = s2 = s3 = 0.0
+    for i in range(n):
+        w = wgt[i]
+        s0 += w * r0[i]
+        s1 += w * r1[i]
+        s2 += w * r2[i]
+        s3 += w * r3[i]
+    out[0], out[1], out[2], out[3] = s0, s1, s2, s3
+
+
+@njit(cache=True)
+def _column_index(j, q, cfg):
+    """Parameter index of column q (0 centre, 1 area, 2 width, 3 second width) of line j; -1 if none."""
+    return j * cfg.npl + q if q < cfg.npl else -1
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FAST)
+def _evaluate(theta, k, cfg, x0, n, prof, observed, ws, tot, fm, g):
     """Model of a loaded window: curvature ``fm``, score ``g`` and variance ``tot`` per pixel.
 
     With ``observed`` the curvature is the Gauss-Newton part of the observed
     Hessian of the shifted-Poisson likelihood (weights ``y'/m**2`` clipped to
     ``[0.5, 2] / m``), which converges in a few steps even where the model
-    misfits; otherwise it is the Fisher information (weights ``1/m``).  With
-    ``stretch`` (instrument shape) a stretch column per line is appended.
-    Returns the chi-square under the noise model.
+    misfits; otherwise it is the Fisher information (weights ``1/m``).
+    The curvature is assembled from 4 x 4 blocks of fused passes over the
+    pixels (line-line, line-background, background-background).  Returns the
+    chi-square under the noise model.
     """
     npl = cfg.npl
     nb = cfg.nb
     p = k * npl + nb
-    pe = p + (k if stretch else 0)
+    pe = p
     ws.stats[1] += 1
     ws.stats[2] += n
     lt, jr, wf = ws.lt, ws.jr, ws.wf
     y, extra, mf = wf[_Y], wf[_EX], wf[_MF]
     mu, wt, wr, wh = wf[_MU], wf[_WT], wf[_WR], wf[_WH]
+    blk = ws.mats[5]
+    sums = ws.vecs[_SUMS]
     for i in range(n):
         mu[i] = 0.0
     for j in range(k):
         b = j * npl
         w = theta[b + 2] if npl > 2 else 0.0
         w2 = theta[b + 3] if npl > 3 else 0.0
-        line_terms(cfg.shape, x0, n, theta[b], w, w2, prof, cfg.p_start, cfg.p_step, lt[0, j], lt[1, j],
-                   lt[2, j], lt[3, j], ws.edges)
+        f = lt[0, j]
+        line_terms(cfg.shape, x0, n, theta[b], w, w2, prof, cfg.p_start, cfg.p_step, f, lt[1, j], lt[2, j],
+                   lt[3, j], ws.edges)
         a = theta[b + 1]
-        f, d1, d2, d3 = lt[0, j], lt[1, j], lt[2, j], lt[3, j]
-        jc, ja = jr[b], jr[b + 1]
         for i in range(n):
             mu[i] += a * f[i]
-            jc[i] = a * d1[i]
-            ja[i] = f[i]
-        if npl > 2:
-            jw = jr[b + 2]
-            for i in range(n):
-                jw[i] = a * d2[i]
-        if npl > 3:
-            jw2 = jr[b + 3]
-            for i in range(n):
-                jw2[i] = a * d3[i]
-        if stretch:
-            js = jr[p + j]
-            for i in range(n):
-                js[i] = a * d2[i]
+    bg0 = k * npl
     for m in range(nb):
-        coef = theta[k * npl + m]
-        row = jr[k * npl + m]
+        coef = theta[bg0 + m]
+        row = jr[bg0 + m]
         for i in range(n):
             mu[i] += coef * row[i]
     rn2 = cfg.read_noise_e * cfg.read_noise_e
@@ -272,18 +318,50 @@ def _evaluate(theta, k, cfg, x0, n, prof, observed, stretch, ws, tot, fm, g):
         chi2 += wri * ri
         wh[i] = wti * min(max(1.0 + ri * wti, 0.5), 2.0) if observed else wti
     for a in range(pe):
-        ra = jr[a]
-        acc = 0.0
-        for i in range(n):
-            acc += wr[i] * ra[i]
-        g[a] = acc
-        for b in range(a, pe):
-            rb = jr[b]
-            acc = 0.0
-            for i in range(n):
-                acc += wh[i] * ra[i] * rb[i]
-            fm[a, b] = acc
-            fm[b, a] = acc
+        g[a] = 0.0
+        for b in range(pe):
+            fm[a, b] = 0.0
+    # background rows, padded to four with the constant row (its extra sums are not used)
+    br0 = jr[bg0]
+    br1 = jr[bg0 + 1] if nb > 1 else br0
+    br2 = jr[bg0 + 2] if nb > 2 else br0
+    br3 = jr[bg0 + 3] if nb > 3 else br0
+    # line columns: d mu / d(centre, area, width, width2) = (a dc, frac, a dw, a dw2)
+    for j in range(k):
+        aj = theta[j * npl + 1]
+        sj = (aj, 1.0, aj, aj)
+        for l in range(j, k):
+            al = theta[l * npl + 1]
+            sl = (al, 1.0, al, al)
+            _block(n, wh, lt[1, j], lt[0, j], lt[2, j], lt[3, j], lt[1, l], lt[0, l], lt[2, l], lt[3, l], blk)
+            for q in range(4):
+                ia = _column_index(j, q, cfg)
+                if ia < 0:
+                    continue
+                for r in range(4):
+                    ib = _column_index(l, r, cfg)
+                    if ib < 0:
+                        continue
+                    v = blk[q, r] * sj[q] * sl[r]
+                    fm[ia, ib] = v
+                    fm[ib, ia] = v
+        _block(n, wh, lt[1, j], lt[0, j], lt[2, j], lt[3, j], br0, br1, br2, br3, blk)
+        _rowsums(n, wr, lt[1, j], lt[0, j], lt[2, j], lt[3, j], sums)
+        for q in range(4):
+            ia = _column_index(j, q, cfg)
+            if ia < 0:
+                continue
+            g[ia] = sums[q] * sj[q]
+            for m in range(nb):
+                v = blk[q, m] * sj[q]
+                fm[ia, bg0 + m] = v
+                fm[bg0 + m, ia] = v
+    _block(n, wh, br0, br1, br2, br3, br0, br1, br2, br3, blk)
+    _rowsums(n, wr, br0, br1, br2, br3, sums)
+    for m in range(nb):
+        g[bg0 + m] = sums[m]
+        for m2 in range(nb):
+            fm[bg0 + m, bg0 + m2] = blk[m, m2]
     for a in range(p):
         if not ws.free[a]:
             g[a] = 0.0
@@ -295,13 +373,16 @@ def _evaluate(theta, k, cfg, x0, n, prof, observed, stretch, ws, tot, fm, g):
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FAST)
-def _evaluate_single(theta, shape, rn2, x0, n, observed, y, extra, mf, dxr, tot, e0, e1, e2, u0, u1, u2, fm, g):
+def _evaluate_single(theta, shape, rn2, x0, n, observed, y, extra, mf, dxr, tot, e, u, fm, g):
     """:func:`_evaluate` for the common case of one Lorentzian or Gaussian line on a quadratic
     background, in one fused pass over the pixels (scalar accumulators; the loop vectorises).
 
-    The arrays are 1-D views made once per fit by the caller (``u*`` are the
-    ``e*`` edge arrays shifted by one), so no view is made per evaluation.
+    ``e`` holds the three 1-D edge arrays and ``u`` the same shifted by one
+    edge: views made once per fit by the caller, so no view is made per
+    evaluation.
     """
+    e0, e1, e2 = e
+    u0, u1, u2 = u
     c, a, w = theta[0], theta[1], theta[2]
     b0, b1, b2 = theta[3], theta[4], theta[5]
     inv = 1.0 / w
@@ -329,13 +410,13 @@ def _evaluate_single(theta, shape, rn2, x0, n, observed, y, extra, mf, dxr, tot,
         r = y[i] - mu
         wr = wt * r
         chi2 += wr * r
-        wh = wt * min(max(1.0 + r * wt, 0.5), 2.0) if observed else wt
         g0 += wr * j0
         g1 += wr * fr
         g2 += wr * j2
         g3 += wr
         g4 += wr * dx
         g5 += wr * dx2
+        wh = wt * min(max(1.0 + r * wt, 0.5), 2.0) if observed else wt
         h0 = wh * j0
         h1 = wh * fr
         h2 = wh * j2
@@ -418,6 +499,109 @@ def _dnll(n, rn2, tot, tot2, y, extra, mf):
     return acc, total
 
 
+@njit(cache=True, error_model="numpy")
+def _linear_start(theta, k, cfg, x0, n, prof, ws):
+    """Areas and background coefficients by weighted linear least squares at the starting centres and
+    widths (data weights 1 / (y' + read noise^2)); a better start than the local level alone."""
+    npl, nb = cfg.npl, cfg.nb
+    lt, jr, wf = ws.lt, ws.jr, ws.wf
+    y, extra, mf = wf[_Y], wf[_EX], wf[_MF]
+    m = k + nb
+    a_mat = ws.mats[3]
+    low = ws.mats[4]
+    rhs = ws.vecs[_RHS]
+    sol = ws.vecs[_STEP]
+    v = ws.vecs[_SUMS]
+    for j in range(k):
+        b = j * npl
+        w = theta[b + 2] if npl > 2 else 0.0
+        w2 = theta[b + 3] if npl > 3 else 0.0
+        line_terms(cfg.shape, x0, n, theta[b], w, w2, prof, cfg.p_start, cfg.p_step, lt[0, j], lt[1, j],
+                   lt[2, j], lt[3, j], ws.edges)
+    for q in range(m):
+        rhs[q] = 0.0
+        for r in range(m):
+            a_mat[q, r] = 0.0
+    rn2 = cfg.read_noise_e * cfg.read_noise_e
+    bg0 = k * npl
+    for i in range(n):
+        if mf[i] == 0.0:
+            continue
+        wgt = 1.0 / max(y[i] + extra[i] + rn2, 1.0)
+        for j in range(k):
+            v[j] = lt[0, j, i]
+        for q in range(nb):
+            v[k + q] = jr[bg0 + q, i]
+        for q in range(m):
+            wq = wgt * v[q]
+            rhs[q] += wq * y[i]
+            for r in range(q + 1):
+                a_mat[q, r] += wq * v[r]
+    for q in range(m):
+        for r in range(q):
+            a_mat[r, q] = a_mat[q, r]
+        a_mat[q, q] *= 1.0 + 1e-9
+    if not _cholesky(a_mat, m, low):
+        return
+    _chol_solve(low, m, rhs, sol)
+    for j in range(k):
+        if not (sol[j] > 0.0 and math.isfinite(sol[j])):
+            return
+    for j in range(k):
+        theta[j * npl + 1] = sol[j]
+    for q in range(nb):
+        theta[bg0 + q] = sol[k + q]
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FAST)
+def _linear_start_single(theta, shape, rn2, x0, n, y, extra, mf, dxr, e, u, a_mat, low, rhs, sol):
+    """:func:`_linear_start` for one Lorentzian or Gaussian line on a quadratic background, fused."""
+    e0, e1, e2 = e
+    u0 = u[0]
+    inv = 1.0 / theta[2]
+    if shape == LORENTZIAN:
+        lorentz_edges(x0, n, theta[0], inv, e0, e1, e2)
+    else:
+        gauss_edges(x0, n, theta[0], inv, e0, e1, e2)
+    sff = sf1 = sfx = sfx2 = s11 = s1x = sxx = sxx2 = sx2x2 = sx3 = 0.0
+    rf = r1 = rx = rx2 = 0.0
+    for i in range(n):
+        wgt = mf[i] / max(y[i] + extra[i] + rn2, 1.0)
+        fr = u0[i] - e0[i]
+        dx = dxr[i]
+        dx2 = dx * dx
+        wf_ = wgt * fr
+        wy = wgt * y[i]
+        sff += wf_ * fr
+        sf1 += wf_
+        sfx += wf_ * dx
+        sfx2 += wf_ * dx2
+        s11 += wgt
+        s1x += wgt * dx
+        sxx += wgt * dx2
+        sx3 += wgt * dx2 * dx
+        sx2x2 += wgt * dx2 * dx2
+        rf += wy * fr
+        r1 += wy
+        rx += wy * dx
+        rx2 += wy * dx2
+    rows = ((sff, sf1, sfx, sfx2), (sf1, s11, s1x, sxx), (sfx, s1x, sxx, sx3), (sfx2, sxx, sx3, sx2x2))
+    for q in range(4):
+        for r in range(4):
+            a_mat[q, r] = rows[q][r]
+        a_mat[q, q] *= 1.0 + 1e-9
+    rhs[0], rhs[1], rhs[2], rhs[3] = rf, r1, rx, rx2
+    four = np.int64(4)  # typed, not literal: one compiled version of the callee
+    if not _cholesky(a_mat, four, low):
+        return
+    _chol_solve(low, four, rhs, sol)
+    if sol[0] > 0.0 and math.isfinite(sol[0]):
+        theta[1] = sol[0]
+        theta[3] = sol[1]
+        theta[4] = sol[2]
+        theta[5] = sol[3]
+
+
 @njit(cache=True)
 def _project(theta, k, cfg):
     npl = cfg.npl
@@ -426,7 +610,10 @@ def _project(theta, k, cfg):
         if cfg.shape == VOIGT:
             theta[b + 2] = min(max(theta[b + 2], VOIGT_MIN_COMPONENT_PX), cfg.max_fwhm_px)
             theta[b + 3] = min(max(theta[b + 3], VOIGT_MIN_COMPONENT_PX), cfg.max_fwhm_px)
-        elif npl > 2:
+        elif cfg.shape == INSTRUMENT:
+            theta[b + 2] = min(max(theta[b + 2], cfg.min_fwhm_px / cfg.inst_fwhm_px),
+                               cfg.max_fwhm_px / cfg.inst_fwhm_px)
+        else:
             theta[b + 2] = min(max(theta[b + 2], cfg.min_fwhm_px), cfg.max_fwhm_px)
 
 
@@ -434,9 +621,7 @@ def _project(theta, k, cfg):
 def _lm(theta, k, cfg, x0, n, prof, ws):
     """Levenberg-Marquardt Fisher scoring of one loaded window; covariance into ``mats[2]``.
 
-    Returns ``(converged, singular, chi2, n_valid)``; for the instrument shape
-    the one-step stretch estimates (stretch - 1) and their variances are in
-    ``vecs[_SDELTA]`` and ``vecs[_SVAR]``.
+    Returns ``(converged, singular, chi2, n_valid)``.
     """
     mats, vecs, wf = ws.mats, ws.vecs, ws.wf
     fm, fm2, cov, work, low = mats[0], mats[1], mats[2], mats[3], mats[4]
@@ -449,19 +634,30 @@ def _lm(theta, k, cfg, x0, n, prof, ws):
     ws.stats[3 + min(k, 4) - 1] += 1
     _project(theta, k, cfg)
     lam = 1e-3
+    observed = np.bool_(True)  # typed flags, not literals: one compiled version of each callee
+    expected = np.bool_(False)
     # views for the fused single-line path, made once per fit
     single = k == 1 and cfg.npl == 3 and cfg.nb == 3 and (cfg.shape == LORENTZIAN or cfg.shape == GAUSSIAN)
     edges = ws.edges
-    e0, e1, e2 = edges[0], edges[1], edges[2]
-    u0, u1, u2 = edges[0, 1:n + 1], edges[1, 1:n + 1], edges[2, 1:n + 1]
+    e3 = (edges[0], edges[1], edges[2])
+    u3 = (edges[0, 1:n + 1], edges[1, 1:n + 1], edges[2, 1:n + 1])
     dxr = ws.jr[k * cfg.npl + 1]
     if single:
-        _evaluate_single(theta, cfg.shape, rn2, x0, n, True, y, extra, mf, dxr, tot, e0, e1, e2, u0, u1, u2, fm, g)
+        _linear_start_single(theta, cfg.shape, rn2, x0, n, y, extra, mf, dxr, e3, u3, work, low, rhs, step)
     else:
-        _evaluate(theta, k, cfg, x0, n, prof, True, False, ws, tot, fm, g)
+        _linear_start(theta, k, cfg, x0, n, prof, ws)
+    if single:
+        _evaluate_single(theta, cfg.shape, rn2, x0, n, observed, y, extra, mf, dxr, tot, e3, u3, fm, g)
+    else:
+        _evaluate(theta, k, cfg, x0, n, prof, observed, ws, tot, fm, g)
     converged = False
     for _ in range(cfg.max_iterations):
-        _damped_step(fm, g, lam, p, ws.free, work, low, scale, rhs, step)
+        ws.stats[5 if k == 1 else 6] += 1
+        if not _damped_step(fm, g, lam, p, ws.free, work, low, scale, rhs, step):
+            lam *= 10.0  # curvature not positive definite here: damp more
+            if lam >= 1e12:
+                break
+            continue
         for a in range(p):
             trial[a] = theta[a] + step[a]
         _project(trial, k, cfg)
@@ -477,10 +673,9 @@ def _lm(theta, k, cfg, x0, n, prof, ws):
             converged = True
             break
         if single:
-            _evaluate_single(trial, cfg.shape, rn2, x0, n, True, y, extra, mf, dxr, tot2, e0, e1, e2, u0, u1, u2,
-                             fm2, g2)
+            _evaluate_single(trial, cfg.shape, rn2, x0, n, observed, y, extra, mf, dxr, tot2, e3, u3, fm2, g2)
         else:
-            _evaluate(trial, k, cfg, x0, n, prof, True, False, ws, tot2, fm2, g2)
+            _evaluate(trial, k, cfg, x0, n, prof, observed, ws, tot2, fm2, g2)
         dnll, total = _dnll(n, rn2, tot, tot2, y, extra, mf)
         accept = math.isfinite(dnll) and dnll <= 1e-12 * abs(total)
         if accept:
@@ -499,29 +694,15 @@ def _lm(theta, k, cfg, x0, n, prof, ws):
             break
         if lam >= 1e12:
             break
-    stretch = cfg.shape == INSTRUMENT
     if single:
-        chi2 = _evaluate_single(theta, cfg.shape, rn2, x0, n, False, y, extra, mf, dxr, tot, e0, e1, e2, u0, u1, u2,
-                                fm, g)
+        chi2 = _evaluate_single(theta, cfg.shape, rn2, x0, n, expected, y, extra, mf, dxr, tot, e3, u3, fm, g)
     else:
-        chi2 = _evaluate(theta, k, cfg, x0, n, prof, False, stretch, ws, tot, fm, g)
+        chi2 = _evaluate(theta, k, cfg, x0, n, prof, expected, ws, tot, fm, g)
     n_valid = 0
     for i in range(n):
         if ws.mask[i]:
             n_valid += 1
     singular = _invert(fm, p, cov, low, scale, rhs, trial)
-    if stretch:
-        pe = p + k
-        for j in range(k):
-            vecs[_SDELTA, j] = math.nan
-            vecs[_SVAR, j] = math.nan
-        if not _invert(fm, pe, work, low, scale, rhs, trial):
-            for j in range(k):
-                acc = 0.0
-                for b in range(pe):
-                    acc += work[p + j, b] * g[b]
-                vecs[_SDELTA, j] = acc
-                vecs[_SVAR, j] = work[p + j, p + j]
     return converged, singular, chi2, n_valid
 
 
@@ -543,7 +724,7 @@ def _half_window(cfg, w, w2):
 @njit(cache=True)
 def _peak_fraction(cfg, c, w, w2, prof, ws):
     lt = ws.lt
-    line_terms(cfg.shape, float(round(c)), 1, c, w, w2, prof, cfg.p_start, cfg.p_step, lt[0, 0], lt[1, 0],
+    line_terms(cfg.shape, float(round(c)), np.int64(1), c, w, w2, prof, cfg.p_start, cfg.p_step, lt[0, 0], lt[1, 0],
                lt[2, 0], lt[3, 0], ws.edges)
     return lt[0, 0, 0]
 
@@ -600,13 +781,16 @@ def _initial_estimates(resid, finite, pix, cfg, r):
 
 
 @njit(cache=True)
-def _set_free(k, cfg, ws):
+def _set_free(k, cfg, ws, stretch_free):
     p = k * cfg.npl + cfg.nb
-    for a in range(p + k):
+    for a in range(p):
         ws.free[a] = True
     if cfg.npl > 3 and not cfg.w2_free:
         for j in range(k):
             ws.free[j * cfg.npl + 3] = False
+    if cfg.shape == INSTRUMENT and not stretch_free:
+        for j in range(k):
+            ws.free[j * cfg.npl + 2] = False  # a laser line is the instrument function itself
 
 
 @njit(cache=True, error_model="numpy")
@@ -637,13 +821,13 @@ def _store(members, k, cfg, theta, lo, length, converged, singular, chi2, n_vali
         b = j * npl
         c = theta[b]
         a = theta[b + 1]
-        w = theta[b + 2] if npl > 2 else cfg.inst_fwhm_px
+        w = theta[b + 2]
         w2 = theta[b + 3] if npl > 3 else math.nan
         bad_line = False
         for q in range(4):
             errs[q] = math.nan
         for q in range(npl):
-            if q == 3 and not cfg.w2_free:
+            if (q == 3 and not cfg.w2_free) or (q == 2 and cfg.shape == INSTRUMENT):
                 continue
             if not singular:
                 v = cov[b + q, b + q]
@@ -655,18 +839,10 @@ def _store(members, k, cfg, theta, lo, length, converged, singular, chi2, n_vali
         lf_out[_A, m] = a
         lf_out[_EC, m] = errs[0]
         lf_out[_EA, m] = errs[1]
-        if cfg.shape == INSTRUMENT:
-            s = 1.0 + vecs[_SDELTA, j]
-            lf_out[_W, m] = s * cfg.inst_fwhm_px if s > 0 else math.nan
-            v = vecs[_SVAR, j]
-            lf_out[_EW, m] = math.sqrt(v) * cfg.inst_fwhm_px if v > 0 else math.nan
-            lf_out[_W2, m] = math.nan
-            lf_out[_EW2, m] = math.nan
-        else:
-            lf_out[_W, m] = w
-            lf_out[_EW, m] = errs[2]
-            lf_out[_W2, m] = w2
-            lf_out[_EW2, m] = errs[3]
+        lf_out[_W, m] = w
+        lf_out[_EW, m] = errs[2]
+        lf_out[_W2, m] = w2
+        lf_out[_EW2, m] = errs[3]
         if math.isfinite(c) and math.isfinite(w):
             lf_out[_AMP, m] = a * _peak_fraction(cfg, c, w, w2, prof, ws)
         else:
@@ -689,10 +865,10 @@ def _store(members, k, cfg, theta, lo, length, converged, singular, chi2, n_vali
             wv = voigt_fwhm(w, w2)
             at_bound = (wv <= cfg.min_fwhm_px * (1 + 1e-6) or wv >= cfg.max_fwhm_px * (1 - 1e-6)
                         or w >= cfg.max_fwhm_px * (1 - 1e-6) or w2 >= cfg.max_fwhm_px * (1 - 1e-6))
-        elif npl > 2:
-            at_bound = w <= cfg.min_fwhm_px * (1 + 1e-6) or w >= cfg.max_fwhm_px * (1 - 1e-6)
-        else:
+        elif cfg.shape == INSTRUMENT:
             at_bound = False
+        else:
+            at_bound = w <= cfg.min_fwhm_px * (1 + 1e-6) or w >= cfg.max_fwhm_px * (1 - 1e-6)
         code = 0
         if not converged:
             code = _NOCONV
@@ -727,12 +903,36 @@ def _fit_window(members, k, cfg, lo, length, bg0, src_f, resid, base, has_base, 
     for q in range(cfg.nb):
         theta[k * npl + q] = 0.0
     theta[k * npl] = bg0
-    _set_free(k, cfg, ws)
+    _set_free(k, cfg, ws, np.bool_(False))
     _load_window(lo, length, k, cfg, resid, base, has_base, finite, use_nbm, ws)
     conv, sing, chi2, n_valid = _lm(theta, k, cfg, float(lo), length, prof, ws)
     _store(members, k, cfg, theta, lo, length, conv, sing, chi2, n_valid, raw, finite, base, has_base, prof, ws,
            lf_out, li_out)
+    if cfg.shape == INSTRUMENT:
+        _instrument_width(members, k, cfg, theta, lo, length, prof, ws, lf_out)
     return chi2
+
+
+@njit(cache=True, error_model="numpy")
+def _instrument_width(members, k, cfg, theta, lo, length, prof, ws, lf_out):
+    """Width of instrument-shaped lines: the fit repeated from its solution with the stretch freed.
+
+    The centre, area and their errors stay those of the fixed-shape fit; the
+    width (stretch times the instrument FWHM) and its error are the maximum-
+    likelihood ones, NaN when that fit does not converge.
+    """
+    theta2 = ws.vecs[_THETA2]
+    p = k * cfg.npl + cfg.nb
+    for a in range(p):
+        theta2[a] = theta[a]
+    _set_free(k, cfg, ws, np.bool_(True))
+    conv, sing, _, _ = _lm(theta2, k, cfg, float(lo), length, prof, ws)
+    cov = ws.mats[2]
+    for j in range(k):
+        b = j * cfg.npl + 2
+        ok = conv and not sing and cov[b, b] > 0
+        lf_out[_W, members[j]] = theta2[b] * cfg.inst_fwhm_px if ok else math.nan
+        lf_out[_EW, members[j]] = math.sqrt(cov[b, b]) * cfg.inst_fwhm_px if ok else math.nan
 
 
 @njit(cache=True, error_model="numpy")
@@ -803,11 +1003,11 @@ def _fit_spectrum(raw, filled, finite, base, has_base, n_det, cfg, prof, ws):
                 wl0 = max(w0 - wg0, 0.1 * w0, VOIGT_MIN_COMPONENT_PX)
             lf[_W0, m] = wl0
             lf[_W20, m] = wg0
-        elif npl > 2:
-            lf[_W0, m] = w0
+        elif cfg.shape == INSTRUMENT:
+            lf[_W0, m] = 1.0  # stretch of the instrument profile
             lf[_W20, m] = math.nan
         else:
-            lf[_W0, m] = cfg.inst_fwhm_px
+            lf[_W0, m] = w0
             lf[_W20, m] = math.nan
         frac0 = _peak_fraction(cfg, c0, lf[_W0, m], lf[_W20, m], prof, ws)
         lf[_A0, m] = h0 / max(frac0, 1e-12)
@@ -827,6 +1027,8 @@ def _fit_spectrum(raw, filled, finite, base, has_base, n_det, cfg, prof, ws):
             if cfg.shape == VOIGT:
                 wa = voigt_fwhm(lf[_W0, m], lf[_W20, m])
                 wb = voigt_fwhm(lf[_W0, m - 1], lf[_W20, m - 1])
+            elif cfg.shape == INSTRUMENT:
+                wa = wb = cfg.inst_fwhm_px
             else:
                 wa = lf[_W0, m]
                 wb = lf[_W0, m - 1]
@@ -863,14 +1065,14 @@ def _fit_spectrum(raw, filled, finite, base, has_base, n_det, cfg, prof, ws):
             members[j] = f0 + j
             bg0 = min(bg0, lf[_LEV, f0 + j])
         _fit_window(members, k, cfg, gi[_GLO, g], gi[_GLEN, g], bg0, lf, resid, base, has_base, finite, raw,
-                    False, prof, ws, lf, li)
+                    np.bool_(False), prof, ws, lf, li)
     # sweep 2: groups reached by other lines' fit windows, refitted from their first fit with those lines'
     # profiles subtracted (and added to the variance)
     if nd >= 2 and ng >= 2:
         snap = ws.snap
         for m in range(nd):
             snap[0, m] = lf[_C, m]
-            snap[1, m] = lf[_W, m] if npl > 2 else cfg.inst_fwhm_px
+            snap[1, m] = 1.0 if cfg.shape == INSTRUMENT else lf[_W, m]
             snap[2, m] = lf[_W2, m]
             snap[3, m] = lf[_A, m]
         for g in range(ng):
@@ -889,12 +1091,12 @@ def _fit_spectrum(raw, filled, finite, base, has_base, n_det, cfg, prof, ws):
                     lf[_C0, m] = snap[0, m]
                 if math.isfinite(snap[3, m]):
                     lf[_A0, m] = snap[3, m]
-                if npl > 2 and math.isfinite(lf[_W, m]):
+                if cfg.shape != INSTRUMENT and math.isfinite(lf[_W, m]):
                     lf[_W0, m] = lf[_W, m]
                 if npl > 3 and math.isfinite(lf[_W2, m]):
                     lf[_W20, m] = lf[_W2, m]
-            _fit_window(members, k, cfg, lo, length, bg0, lf, resid, base, has_base, finite, raw, True, prof, ws,
-                        lf, li)
+            _fit_window(members, k, cfg, lo, length, bg0, lf, resid, base, has_base, finite, raw, np.bool_(True),
+                        prof, ws, lf, li)
     return _split_blends(raw, finite, resid, base, has_base, nd, ng, cfg, prof, ws)
 
 
@@ -919,14 +1121,17 @@ def _split_blends(raw, finite, resid, base, has_base, nd, ng, cfg, prof, ws):
         if not (li[_MSG, m] == 0 and lf[_CHI2, m] > 1 + 5 * math.sqrt(2.0 / dof)
                 and lf[_A, m] / lf[_EA, m] > 2 * cfg.snr_min):
             continue
+        if cfg.shape == INSTRUMENT and not (lf[_W, m] < BLEND_MAX_STRETCH * cfg.inst_fwhm_px):
+            continue  # far wider than a pair of instrument-limited lines: a broad line, not a blend
         # one line, refitted without neighbour subtraction (the same footing as the pair)
         tmp_f[_C0, 0] = lf[_C, m]
         tmp_f[_A0, 0] = lf[_A, m]
-        tmp_f[_W0, 0] = lf[_W, m]
+        tmp_f[_W0, 0] = 1.0 if cfg.shape == INSTRUMENT else lf[_W, m]
         tmp_f[_W20, 0] = lf[_W2, m]
         members[0] = 0
-        chi_one = _fit_window(members, 1, cfg, lo, length, lf[_LEV, m], tmp_f, resid, base, has_base, finite, raw,
-                              False, prof, ws, tmp_f, tmp_i)
+        no = np.bool_(False)  # typed, not literal (one compiled version of the callee)
+        chi_one = _fit_window(members, np.int64(1), cfg, lo, length, lf[_LEV, m], tmp_f, resid, base, has_base,
+                              finite, raw, no, prof, ws, tmp_f, tmp_i)
         c = lf[_C, m]
         a = lf[_A, m]
         if cfg.shape == INSTRUMENT:
@@ -942,12 +1147,15 @@ def _split_blends(raw, finite, resid, base, has_base, nd, ng, cfg, prof, ws):
             if cfg.shape == VOIGT:
                 tmp_f[_W0, j] = max(0.7 * lf[_W, m], VOIGT_MIN_COMPONENT_PX)
                 tmp_f[_W20, j] = max(0.7 * lf[_W2, m], VOIGT_MIN_COMPONENT_PX) if cfg.w2_free else lf[_W2, m]
+            elif cfg.shape == INSTRUMENT:
+                tmp_f[_W0, j] = 1.0
+                tmp_f[_W20, j] = math.nan
             else:
                 tmp_f[_W0, j] = max(0.7 * lf[_W, m], cfg.min_fwhm_px * 1.5)
                 tmp_f[_W20, j] = math.nan
             members[j] = j
-        chi_two = _fit_window(members, 2, cfg, lo, length, lf[_LEV, m], tmp_f, resid, base, has_base, finite, raw,
-                              False, prof, ws, tmp_f, tmp_i)
+        chi_two = _fit_window(members, np.int64(2), cfg, lo, length, lf[_LEV, m], tmp_f, resid, base, has_base,
+                              finite, raw, no, prof, ws, tmp_f, tmp_i)
         better = chi_one - chi_two > cfg.blend_dchi2
         for j in range(2):
             if tmp_i[_MSG, j] != 0 or not (tmp_f[_A, j] / tmp_f[_EA, j] > cfg.snr_min):

@@ -13,10 +13,11 @@ derivatives with respect to the line's parameters:
   half plane); pixel integrals by Gauss-Legendre quadrature with a node count
   set by the FWHM (relative error below 1e-6), the centre derivative exactly
   from the edge densities.
-* Instrument (no width parameter): an empirical pixel-integrated profile
-  ``P(d)`` of the offset ``d = x - c``, stored as uniform cubic B-spline
-  coefficients; its "width" derivative is that of a stretch ``P(d/s)/s`` at
-  ``s = 1``, used only to test whether a line is wider than the instrument.
+* Instrument: an empirical pixel-integrated profile ``P(d)`` of the offset
+  ``d = x - c``, stored as uniform cubic B-spline coefficients; its width
+  parameter is a stretch ``s`` of it, ``P(d/s)/s`` (1 for a laser line: it is
+  held at 1 in the fit and freed only to judge whether a line is wider than
+  the instrument).
 
 Shape codes: 0 Lorentzian, 1 Gaussian, 2 Voigt, 3 instrument.
 """
@@ -31,7 +32,7 @@ from numba import njit
 LORENTZIAN, GAUSSIAN, VOIGT, INSTRUMENT = 0, 1, 2, 3
 SHAPE_CODES = {"lorentzian": LORENTZIAN, "gaussian": GAUSSIAN, "voigt": VOIGT, "instrument": INSTRUMENT}
 #: parameters per line (centre, area, widths) of each shape code
-PARAMS_PER_LINE = (3, 3, 4, 2)
+PARAMS_PER_LINE = (3, 3, 4, 3)
 
 GAUSSIAN_FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
 _K = GAUSSIAN_FWHM_PER_SIGMA
@@ -55,17 +56,22 @@ def _weideman_coefficients(n_terms):
     return np.ascontiguousarray(a[1:n_terms + 1][::-1]), scale
 
 
-_W_COEF, _W_L = _weideman_coefficients(40)
+_coef, _W_L = _weideman_coefficients(40)
+_W_COEF = tuple(float(c) for c in _coef)  # constants are tuples: frozen into the compiled code (and its cache)
 
-# Gauss-Legendre rules on [-1/2, 1/2] for the Voigt pixel integrals
-_QUAD_SIZES = np.array([4, 6, 8, 12, 16, 24, 32], dtype=np.int64)
-QUAD_X = np.zeros((_QUAD_SIZES.size, 32))
-QUAD_W = np.zeros((_QUAD_SIZES.size, 32))
-for _i, _n in enumerate(_QUAD_SIZES):
-    _x, _w = np.polynomial.legendre.leggauss(int(_n))
-    QUAD_X[_i, :_n] = 0.5 * _x
-    QUAD_W[_i, :_n] = 0.5 * _w
-QUAD_N = _QUAD_SIZES
+
+def _gauss_legendre_rules():
+    """Gauss-Legendre nodes and weights on [-1/2, 1/2] for the Voigt pixel integrals (zero-padded to 32)."""
+    sizes = (4, 6, 8, 12, 16, 24, 32)
+    xs, ws = [], []
+    for n in sizes:
+        x, w = np.polynomial.legendre.leggauss(n)
+        xs.append(tuple(np.concatenate([0.5 * x, np.zeros(32 - n)]).tolist()))
+        ws.append(tuple(np.concatenate([0.5 * w, np.zeros(32 - n)]).tolist()))
+    return sizes, tuple(xs), tuple(ws)
+
+
+QUAD_N, QUAD_X, QUAD_W = _gauss_legendre_rules()
 
 
 @njit(cache=True)
@@ -106,10 +112,10 @@ def voigt_density(x, wl, wg):
 @njit(cache=True)
 def _quad_rule(fwhm):
     need = 10.0 / max(fwhm, 1e-6)
-    for i in range(QUAD_N.size):
+    for i in range(len(QUAD_N)):
         if QUAD_N[i] >= need:
             return i
-    return QUAD_N.size - 1
+    return len(QUAD_N) - 1
 
 
 @njit(cache=True)
@@ -147,7 +153,7 @@ def _atan_coefficients(degree=8):
     return np.ascontiguousarray(coef[::-1])
 
 
-_ATAN_C = _atan_coefficients()  # max error 3e-16 on the reduced range (checked in the tests)
+_ATAN_C = tuple(float(c) for c in _atan_coefficients())  # max error 3e-16 on the reduced range
 _TAN_PI_8 = math.tan(math.pi / 8.0)
 
 
@@ -171,7 +177,7 @@ def fast_atan(x):
 
 @njit(cache=True, error_model="numpy", fastmath={"contract"})
 def lorentz_edges(x0, n, c, inv, e0, e1, e2):
-    """Lorentzian CDF (less 1/2), density and u * density at the n + 1 pixel edges, u = (x - c) * inv."""
+    """Lorentzian CDF (less 1/2), density p and u p at the n + 1 pixel edges, u = (x - c) * inv."""
     start = x0 - 0.5 - c
     for e in range(n + 1):
         u = (start + e) * inv
@@ -183,7 +189,7 @@ def lorentz_edges(x0, n, c, inv, e0, e1, e2):
 
 @njit(cache=True, error_model="numpy")
 def gauss_edges(x0, n, c, inv, e0, e1, e2):
-    """Gaussian CDF, density and u * density at the n + 1 pixel edges, u = (x - c) * inv."""
+    """Gaussian CDF, density p and u p at the n + 1 pixel edges, u = (x - c) * inv."""
     start = x0 - 0.5 - c
     for e in range(n + 1):
         u = (start + e) * inv
@@ -199,8 +205,8 @@ def line_terms(shape, x0, n, c, w, w2, prof, p_start, p_step, frac, dc, dw, dw2,
     """Pixel fractions of a unit-area line over pixels x0 .. x0 + n - 1 and their derivatives.
 
     Writes ``frac`` (fraction of the line in each pixel), ``dc`` (d frac/d centre),
-    ``dw`` (d frac/d width: FWHM, Lorentzian FWHM for the Voigt, stretch for the
-    instrument shape) and ``dw2`` (Voigt: d frac/d Gaussian FWHM).  ``edges`` is
+    ``dw`` (d frac/d width: FWHM, Lorentzian FWHM for the Voigt, stretch ``s``
+    for the instrument shape) and ``dw2`` (Voigt: d frac/d Gaussian FWHM).  ``edges`` is
     scratch of shape (3, >= n + 1).
     """
     if shape == LORENTZIAN or shape == GAUSSIAN:
@@ -225,11 +231,12 @@ def line_terms(shape, x0, n, c, w, w2, prof, p_start, p_step, frac, dc, dw, dw2,
             sf = 0.0
             sl = 0.0
             sg = 0.0
+            qx, qw = QUAD_X[q], QUAD_W[q]
             for m in range(nq):
-                v, _, dl, dg = voigt_density(xc + QUAD_X[q, m], w, w2)
-                sf += QUAD_W[q, m] * v
-                sl += QUAD_W[q, m] * dl
-                sg += QUAD_W[q, m] * dg
+                v, _, dl, dg = voigt_density(xc + qx[m], w, w2)
+                sf += qw[m] * v
+                sl += qw[m] * dl
+                sg += qw[m] * dg
             v_hi = voigt_density(xc + 0.5, w, w2)[0]
             frac[i] = sf
             dc[i] = -(v_hi - v_prev)
@@ -237,12 +244,13 @@ def line_terms(shape, x0, n, c, w, w2, prof, p_start, p_step, frac, dc, dw, dw2,
             dw2[i] = sg
             v_prev = v_hi
     else:
+        inv = 1.0 / w
         for i in range(n):
-            d = x0 + i - c
+            d = (x0 + i - c) * inv
             p, dp = bspline_profile(d, prof, p_start, p_step)
-            frac[i] = p
-            dc[i] = -dp
-            dw[i] = -p - d * dp
+            frac[i] = p * inv
+            dc[i] = -dp * inv * inv
+            dw[i] = -(p + d * dp) * inv * inv
 
 
 @njit(cache=True)
@@ -250,7 +258,7 @@ def profile_block(shape, x, centers, w, w2, prof, p_start, p_step, out):
     """Pixel fractions of unit-area lines (one per row of ``out``) on the contiguous pixels ``x``."""
     n = x.size
     scratch = np.empty((3, n))
-    edges = np.empty((3, n + 1))
+    edges = np.empty((3, n + 2))
     for r in range(centers.size):
         line_terms(shape, x[0], n, centers[r], w[r], w2[r], prof, p_start, p_step, out[r],
                    scratch[0], scratch[1], scratch[2], edges)

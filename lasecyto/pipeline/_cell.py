@@ -18,6 +18,7 @@ from ..cavity import assign_mode_families, cell_frames
 from ..exceptions import InputError, LasecytoError
 from ..features import summarize_cell
 from ..io import check_sidecar, read_sidecar, read_stack
+from ..lines import InstrumentProfile
 from ..tracks import link_lines
 from ._lines_stage import stack_lines
 
@@ -40,6 +41,7 @@ class CellJob:
     lamp_axis: WavelengthAxis | None = None
     lamp_error: str | None = None
     resonator: str = "fabry-perot"
+    instrument: InstrumentProfile | None = None  # instrument function measured from the lamp frame
 
 
 @dataclass
@@ -88,7 +90,8 @@ def _run_fabry_perot(job: CellJob) -> CellResult:
         else:
             r0, r1 = 0, stack.n_rows
         times = sidecar.frame_times_s
-        lines = stack_lines(stack, cam, axis, times, rows=(r0, r1), cell_id=job.cell_id, parameters=p)
+        lines = stack_lines(stack, cam, axis, times, rows=(r0, r1), cell_id=job.cell_id, parameters=p,
+                            instrument=job.instrument)
         n_frames = stack.n_frames
     tp = p["tracks"]
     tracks = link_lines(lines, max_step_nm=tp["max_step_nm"], max_gap_frames=tp["max_gap_frames"],

@@ -21,6 +21,7 @@ from ..calibration import reference_lines, solve_dispersion
 from ..exceptions import InputError, LasecytoError
 from ..io import file_sha256, missing_files, read_manifest, read_sidecar, read_stack, write_json, write_table
 from ._cell import CellJob, CellResult, process_cell
+from ._instrument import lamp_instrument
 from ._params import load_recipe, resolve_parameters
 
 __all__ = ["RunResult", "run_experiment", "calibrate_lamp"]
@@ -169,11 +170,12 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
     (out_dir / "tables").mkdir(parents=True, exist_ok=True)
 
     items = []
-    lamp_axis, lamp_error, calib_summary = None, None, None
+    lamp_axis, lamp_error, calib_summary, instrument = None, None, None, None
     if manifest.lamp is not None:
         try:
             solution, calib_summary = calibrate_lamp(manifest.lamp, params)
             lamp_axis = solution.axis()
+            instrument, calib_summary["instrument"] = lamp_instrument(manifest.lamp)
             (out_dir / "calibration.txt").write_text(solution.report() + "\n")
             items.append({"item": "lamp", "status": "ok", "error": "", "seconds": None})
         except (LasecytoError, OSError) as exc:
@@ -196,7 +198,7 @@ def run_experiment(manifest_path, out_dir, *, workers=1, recipe=None, show_progr
                             perturbation_s=float(c.perturbation_s), stack=str(c.stack),
                             sidecar=str(c.sidecar), rows=c.rows, gap_um=float(manifest.gap_um),
                             parameters=params, lamp_axis=lamp_axis, lamp_error=lamp_error,
-                            resonator=manifest.resonator))
+                            resonator=manifest.resonator, instrument=instrument))
 
     bar = None
     if show_progress is None:

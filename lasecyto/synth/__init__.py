@@ -11,8 +11,12 @@ neon_lines_air_nm     Ne I air wavelengths 530-725 nm (NIST ASD)
 neon_relative_intensities  their NIST relative intensities
 fp_mode_wavelengths   exact resonances of a dispersive Fabry-Perot gap
 water_index_daimon    refractive index of water at 20 degC
+camera_frames         frames of a steady scene through a known camera (offset, gain, read noise)
+slit_line_photons     narrow lines through a slit-image instrument function (optionally asymmetric)
+add_cosmic_rays       single-pixel cosmic-ray hits added to frames
 """
 
+from ._camera import add_cosmic_rays, camera_frames, slit_line_photons
 from ._experiment import write_fp_experiment
 from ._media import water_index_daimon
 from ._modes import fp_mode_wavelengths
@@ -26,4 +30,7 @@ __all__ = [
     "neon_relative_intensities",
     "fp_mode_wavelengths",
     "water_index_daimon",
+    "camera_frames",
+    "slit_line_photons",
+    "add_cosmic_rays",
 ]
