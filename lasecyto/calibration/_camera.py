@@ -146,7 +146,8 @@ def photon_transfer(frames, *, offset_counts=0.0, read_noise_counts=None, satura
     saturation_counts : float
         Pixels that reach it in any frame are left out.
     n_levels : int
-        Groups of pixels by mean level (quantiles of the level).
+        Groups of pixels by mean level (quantiles of the level); fewer when
+        there are not ``2 * min_pixels`` pixels per group.
     normalise : bool
         Divide every frame's signal by its total relative to the mean total
         first: removes light fluctuations common to all pixels (pump energy),
@@ -186,6 +187,7 @@ def photon_transfer(frames, *, offset_counts=0.0, read_noise_counts=None, satura
     signal, var = signal[use], var[use]
     if signal.size < min_pixels * 3:
         raise CalibrationError(f"photon transfer: {signal.size} usable pixels, needs at least {min_pixels * 3}")
+    n_levels = max(3, min(int(n_levels), signal.size // (2 * min_pixels)))  # groups of at least 2 min_pixels
     edges = np.unique(np.quantile(signal, np.linspace(0.0, 1.0, n_levels + 1)))
     which = np.clip(np.searchsorted(edges, signal, side="right") - 1, 0, edges.size - 2)
     xs, x2s, ys, ws = [], [], [], []
@@ -206,8 +208,11 @@ def photon_transfer(frames, *, offset_counts=0.0, read_noise_counts=None, satura
         ws.append(v.size * n_t / (2.0 * m * m) if m > 0 else 0.0)
     x, x2, yv, w = np.array(xs), np.array(x2s), np.array(ys), np.array(ws)
     n_par = (2 if read_noise_counts is None else 1) + (1 if quadratic else 0)
-    if x.size < n_par + 2 or np.ptp(x) <= 0:
+    if x.size < n_par + 2:
         raise CalibrationError(f"photon transfer: {x.size} signal levels, needs at least {n_par + 2} distinct ones")
+    if np.ptp(x) < 0.5 * max(float(np.max(np.abs(x))), 1.0):
+        raise CalibrationError(f"photon transfer: the signal levels span only {x.min():.4g} to {x.max():.4g} counts "
+                               "above the offset; needs a range of levels (at least a factor of two)")
     cols = [x]
     target = yv.copy()
     if read_noise_counts is None:

@@ -65,14 +65,16 @@ def flag_cosmic_rays(frame, center_px, fwhm_px, *, instrument_fwhm_px, max_width
     if cand.size == 0:
         return out
     ok = np.isfinite(c)
-    span = float(np.nanmax(np.abs(c[ok]))) if ok.any() else 0.0
-    stride = 2.0 * span + 10.0 * match_px + 10.0
-    keys = np.sort(frame[ok] * stride + c[ok])
+    order = np.lexsort((c[ok], frame[ok]))
+    f_sorted, c_sorted = frame[ok][order], c[ok][order]
     seen = np.zeros(cand.size, dtype=bool)
-    for step in (-1, 1):
-        q = (frame[cand] + step) * stride + c[cand]
-        lo = np.searchsorted(keys, q - match_px, side="left")
-        hi = np.searchsorted(keys, q + match_px, side="right")
-        seen |= (hi > lo) & np.isfinite(c[cand])
+    for n, i in enumerate(cand):
+        if not ok[i]:
+            continue
+        for other in (frame[i] - 1, frame[i] + 1):
+            lo, hi = np.searchsorted(f_sorted, other, side="left"), np.searchsorted(f_sorted, other, side="right")
+            j = lo + np.searchsorted(c_sorted[lo:hi], c[i] - match_px, side="left")
+            if j < hi and c_sorted[j] <= c[i] + match_px:
+                seen[n] = True
     out[cand] = ~seen
     return out

@@ -32,6 +32,8 @@ _NOCONV, _BOUND, _AREA, _LEFT, _SINGULAR, _NONFINITE = 1, 2, 3, 4, 5, 6
 
 #: the largest number of lines fitted jointly
 MAX_K = 4
+#: a detection whose two neighbouring pixels are both below this fraction of its peak is a spike
+SPIKE_NEIGHBOUR_RATIO = 0.1
 #: instrument shape: a single line is tried as a blend of two only while its width diagnostic is below this
 #: many instrument FWHM (two instrument-limited lines closer than 1.5 FWHM look at most about this wide)
 BLEND_MAX_STRETCH = 2.0
@@ -54,13 +56,13 @@ FitConfig = namedtuple("FitConfig", [
  _CLG) = range(18)
 _NLF = N_LINE_FIELDS = 18
 # per-line integer fields
-_MSG, _SAT, _GRP, _DPIX = range(4)
-_NLI = N_LINE_INTS = 4
+_MSG, _SAT, _GRP, _DPIX, _SPIKE = range(5)
+_NLI = N_LINE_INTS = 5
 # per-group integer fields
 _GFIRST, _GSIZE, _GLO, _GLEN = range(4)
 # per-pixel fields
-_Y, _EX, _TOT, _TOT2, _NBM, _RES, _VAR, _SCORE, _HGT, _MU, _WT, _R, _WR, _WH, _MF = range(15)
-_NWF = 15
+_Y, _EX, _TOT, _TOT2, _NBM, _RES, _VAR, _SCORE, _HGT, _MU, _WT, _R, _WR, _WH, _MF, _SPK = range(16)
+_NWF = 16
 _PMAX = MAX_K * 4 + 4  # line parameters, background
 # small vectors
 _G, _G2, _TRIAL, _STEP, _SCALE, _RHS, _ERRS, _THETA, _SUMS, _THETA2 = range(10)
@@ -79,7 +81,7 @@ def _workspace(n):
                      np.zeros((_PMAX, n + 1)), np.zeros((6, _PMAX, _PMAX)), np.zeros((10, _PMAX)),
                      np.ones(_PMAX, dtype=np.bool_), np.zeros(cap, dtype=np.int64),
                      np.zeros(MAX_K, dtype=np.int64), np.full((_NLF, MAX_K), np.nan),
-                     np.zeros((_NLI, MAX_K), dtype=np.int64), np.zeros((4, cap)),
+                     np.zeros((_NLI, MAX_K), dtype=np.int64), np.zeros((5, cap)),
                      np.zeros(cap, dtype=np.int64), np.zeros(cap), np.zeros(2 * n + 8), np.zeros(cap),
                      np.zeros(8, dtype=np.int64))
 
@@ -119,19 +121,19 @@ def _chol_solve(low, p, b, out):
 
 @njit(cache=True)
 def _damped_step(fm, g, lam, p, free, work, low, scale, rhs, step):
-    """Levenberg-Marquardt step on the Fisher matrix scaled to unit diagonal."""
+    """Levenberg-Marquardt step on the Fisher matrix scaled to unit diagonal; parameters not ``free`` stay."""
     for i in range(p):
         d = fm[i, i]
         scale[i] = 1.0 / math.sqrt(d) if d > 0.0 else 1.0
     ok = True
     for i in range(p):
         for j in range(p):
-            v = fm[i, j] * scale[i] * scale[j]
+            v = fm[i, j] * scale[i] * scale[j] if (free[i] and free[j]) else 0.0
             if not math.isfinite(v):
                 ok = False
             work[i, j] = v
-        work[i, i] += lam + 1e-12
-        rhs[i] = g[i] * scale[i]
+        work[i, i] = work[i, i] + lam + 1e-12 if free[i] else 1.0
+        rhs[i] = g[i] * scale[i] if free[i] else 0.0
     if ok:
         ok = _cholesky(work, p, low)
     if not ok:
@@ -196,7 +198,7 @@ def _load_window(lo, length, k, cfg, resid, base, has_base, finite, use_nbm, ws)
             ex += nbm[i]
         wf[_Y, i] = y
         wf[_EX, i] = ex
-        ok = finite[col]
+        ok = finite[col] and not (use_nbm and wf[_SPK, i] > 0.0)
         ws.mask[i] = ok
         wf[_MF, i] = 1.0 if ok else 0.0
     row0 = k * cfg.npl
@@ -651,9 +653,10 @@ def _lm(theta, k, cfg, x0, n, prof, ws):
     else:
         _evaluate(theta, k, cfg, x0, n, prof, observed, ws, tot, fm, g)
     converged = False
+    act = ws.free
     for _ in range(cfg.max_iterations):
         ws.stats[5 if k == 1 else 6] += 1
-        if not _damped_step(fm, g, lam, p, ws.free, work, low, scale, rhs, step):
+        if not _damped_step(fm, g, lam, p, act, work, low, scale, rhs, step):
             lam *= 10.0  # curvature not positive definite here: damp more
             if lam >= 1e12:
                 break
@@ -777,7 +780,10 @@ def _initial_estimates(resid, finite, pix, cfg, r):
     if not (r0 > 0 and math.isfinite(width)):
         width = cfg.fwhm_guess_px
     width = min(max(width, max(cfg.min_fwhm_px, 1.0)), cfg.max_fwhm_px)
-    return center, width, max(r0, 0.0), level
+    # a single-pixel spike: both neighbours below SPIKE_NEIGHBOUR_RATIO of the peak (light through the
+    # spectrometer spreads over at least ~1.2 px FWHM, which leaves its neighbours above a quarter of it)
+    spike = r0 > 0 and max(rl, rr) < SPIKE_NEIGHBOUR_RATIO * r0
+    return center, width, max(r0, 0.0), level, spike
 
 
 @njit(cache=True)
@@ -941,18 +947,33 @@ def _neighbour_model(g, cfg, n_lines, lo, length, filled, prof, ws):
 
     Returns True when their summed chi-square contribution under the noise
     model, sum(model^2 / var), reaches ``NEIGHBOUR_MIN_CHI2`` (below it the
-    wings cannot move a centre by more than 0.1 sigma).
+    wings cannot move a centre by more than 0.1 sigma), or when a spike (a
+    line fitted at the lower width bound) lies in the window: its pixels are
+    then marked in ``wf[_SPK]`` and left out of the refit.
     """
     lt, snap, li = ws.lt, ws.snap, ws.li
     nbm = ws.wf[_NBM]
+    spk = ws.wf[_SPK]
     for i in range(length):
         nbm[i] = 0.0
+        spk[i] = 0.0
     hi = lo + length - 1
     touched = False
+    spikes = False
     for m in range(n_lines):
         if li[_GRP, m] == g:
             continue
         c, w, w2, a = snap[0, m], snap[1, m], snap[2, m], snap[3, m]
+        if not (math.isfinite(c) and c > lo - 2 and c < hi + 2):
+            pass
+        elif snap[4, m] <= cfg.min_fwhm_px * (1 + 1e-6):
+            # narrower than any light through the spectrometer (a spike): its pixels are left out of the
+            # window instead of being modelled
+            r = int(round(c))
+            for i in range(max(r - 1 - lo, 0), min(r + 2 - lo, length)):
+                spk[i] = 1.0
+                spikes = True
+            continue
         if not (math.isfinite(c) and math.isfinite(w) and math.isfinite(a) and a > 0):
             continue
         if cfg.npl > 3 and not math.isfinite(w2):
@@ -966,6 +987,8 @@ def _neighbour_model(g, cfg, n_lines, lo, length, filled, prof, ws):
         f = lt[0, 0]
         for i in range(length):
             nbm[i] += a * f[i]
+    if spikes:
+        return True
     if not touched:
         return False
     rn2 = cfg.read_noise_e * cfg.read_noise_e
@@ -991,9 +1014,10 @@ def _fit_spectrum(raw, filled, finite, base, has_base, n_det, cfg, prof, ws):
     npl = cfg.npl
     # starting values
     for m in range(nd):
-        c0, w0, h0, lev = _initial_estimates(resid, finite, det[m], cfg, ws.scratch)
+        c0, w0, h0, lev, spike = _initial_estimates(resid, finite, det[m], cfg, ws.scratch)
         lf[_C0, m] = c0
         lf[_LEV, m] = lev
+        li[_SPIKE, m] = 1 if spike else 0
         if cfg.shape == VOIGT:
             if cfg.w2_free:
                 wl0 = w0 / 1.6376
@@ -1034,7 +1058,8 @@ def _fit_spectrum(raw, filled, finite, base, has_base, n_det, cfg, prof, ws):
                 wb = lf[_W0, m - 1]
             near = (gap < cfg.blend_separation_fwhm * max(wa, wb)
                     or gap < cfg.joint_overlap * max(lf[_HALF, m], lf[_HALF, m - 1]))
-            join = near and (run % cfg.max_group) != 0
+            # a spike is never fitted jointly: it cannot be modelled and would stall its partners
+            join = near and (run % cfg.max_group) != 0 and li[_SPIKE, m] == 0 and li[_SPIKE, m - 1] == 0
         if join:
             run += 1
             gi[_GSIZE, ng - 1] += 1
@@ -1075,6 +1100,7 @@ def _fit_spectrum(raw, filled, finite, base, has_base, n_det, cfg, prof, ws):
             snap[1, m] = 1.0 if cfg.shape == INSTRUMENT else lf[_W, m]
             snap[2, m] = lf[_W2, m]
             snap[3, m] = lf[_A, m]
+            snap[4, m] = voigt_fwhm(lf[_W, m], lf[_W2, m]) if cfg.shape == VOIGT else lf[_W, m]  # FWHM, px
         for g in range(ng):
             lo, length = gi[_GLO, g], gi[_GLEN, g]
             if not _neighbour_model(g, cfg, nd, lo, length, filled, prof, ws):
