@@ -52,11 +52,12 @@ def _detect_block(raw, base, has_base, read_noise_e, kernel, snr_min, radius, pe
     for s in prange(s_count):
         filled = np.empty(n)
         finite = np.empty(n, dtype=np.bool_)
-        scratch = np.empty((4, n))
+        scratch = np.empty((2, n))
+        work32 = np.empty((4, n), dtype=np.float32)
         fill_row(raw[s], filled, finite)
         brow = base[s] if has_base else base[0]
         count[s] = detect_row(filled, brow, has_base, finite, read_noise_e, kernel, snr_min, radius, pix[s],
-                              snr[s], scratch[0], peak_frac, scratch[1], scratch[2], scratch[3])
+                              snr[s], scratch[0], peak_frac, scratch[1], work32)
         for m in range(count[s]):
             height[s, m] = scratch[0, pix[s, m]]
     return pix, snr, height, count

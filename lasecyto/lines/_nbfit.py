@@ -77,7 +77,7 @@ def _workspace(n):
     cap = n + 2
     return Workspace(np.full((_NLF, cap), np.nan), np.zeros((_NLI, cap), dtype=np.int64),
                      np.zeros((4, cap), dtype=np.int64), np.zeros((_NWF, n + 1)),
-                     np.zeros(n + 1, dtype=np.bool_), np.zeros((4, MAX_K, n + 1)), np.zeros((3, n + 2)),
+                     np.zeros(n + 1, dtype=np.bool_), np.zeros((4, MAX_K, n + 1)), np.zeros((6, n + 2)),
                      np.zeros((_PMAX, n + 1)), np.zeros((6, _PMAX, _PMAX)), np.zeros((10, _PMAX)),
                      np.ones(_PMAX, dtype=np.bool_), np.zeros(cap, dtype=np.int64),
                      np.zeros(MAX_K, dtype=np.int64), np.full((_NLF, MAX_K), np.nan),
@@ -473,6 +473,226 @@ def _evaluate_single(theta, shape, rn2, x0, n, observed, y, extra, mf, dxr, tot,
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FAST)
+def _evaluate_pair(theta, shape, rn2, x0, n, observed, y, extra, mf, dxr, tot, e, u, fm, g):
+    """:func:`_evaluate` for two Lorentzian or Gaussian lines on a quadratic background, fused like
+    :func:`_evaluate_single` (parameters c1, a1, w1, c2, a2, w2, b0, b1, b2; ``e``/``u`` hold six edge arrays,
+    three per line).  Written out, one scalar accumulator per entry of the curvature matrix, so that the
+    pixel loop vectorises."""
+    ea0, ea1, ea2, eb0, eb1, eb2 = e
+    ua0, ua1, ua2, ub0, ub1, ub2 = u
+    c1, a1, w1, c2, a2, w2 = theta[0], theta[1], theta[2], theta[3], theta[4], theta[5]
+    b0, b1, b2 = theta[6], theta[7], theta[8]
+    inv1 = 1.0 / w1
+    inv2 = 1.0 / w2
+    if shape == LORENTZIAN:
+        lorentz_edges(x0, n, c1, inv1, ea0, ea1, ea2)
+        lorentz_edges(x0, n, c2, inv2, eb0, eb1, eb2)
+    else:
+        gauss_edges(x0, n, c1, inv1, ea0, ea1, ea2)
+        gauss_edges(x0, n, c2, inv2, eb0, eb1, eb2)
+    s1 = a1 * inv1
+    s2 = a2 * inv2
+    chi2 = 0.0
+    g0 = g1 = g2 = g3 = g4 = g5 = g6 = g7 = g8 = f00 = f01 = f02 = 0.0
+    f03 = f04 = f05 = f06 = f07 = f08 = f11 = f12 = f13 = f14 = f15 = f16 = 0.0
+    f17 = f18 = f22 = f23 = f24 = f25 = f26 = f27 = f28 = f33 = f34 = f35 = 0.0
+    f36 = f37 = f38 = f44 = f45 = f46 = f47 = f48 = f55 = f56 = f57 = f58 = 0.0
+    m0 = m1 = m2 = m3 = m4 = 0.0
+    for i in range(n):
+        fa = ua0[i] - ea0[i]
+        fb = ub0[i] - eb0[i]
+        j0 = (ea1[i] - ua1[i]) * s1
+        j2 = (ea2[i] - ua2[i]) * s1
+        j3 = (eb1[i] - ub1[i]) * s2
+        j5 = (eb2[i] - ub2[i]) * s2
+        dx = dxr[i]
+        dx2 = dx * dx
+        mu = a1 * fa + a2 * fb + b0 + b1 * dx + b2 * dx2
+        t = max(max(mu + extra[i], 0.0) + rn2, VARIANCE_FLOOR_E2)
+        tot[i] = t
+        wt = mf[i] / t
+        r = y[i] - mu
+        wr = wt * r
+        chi2 += wr * r
+        wh = wt * min(max(1.0 + r * wt, 0.5), 2.0) if observed else wt
+        g0 += wr * j0
+        g1 += wr * fa
+        g2 += wr * j2
+        g3 += wr * j3
+        g4 += wr * fb
+        g5 += wr * j5
+        g6 += wr
+        g7 += wr * dx
+        g8 += wr * dx2
+        h0 = wh * j0
+        f00 += h0 * j0
+        f01 += h0 * fa
+        f02 += h0 * j2
+        f03 += h0 * j3
+        f04 += h0 * fb
+        f05 += h0 * j5
+        f06 += h0
+        f07 += h0 * dx
+        f08 += h0 * dx2
+        h1 = wh * fa
+        f11 += h1 * fa
+        f12 += h1 * j2
+        f13 += h1 * j3
+        f14 += h1 * fb
+        f15 += h1 * j5
+        f16 += h1
+        f17 += h1 * dx
+        f18 += h1 * dx2
+        h2 = wh * j2
+        f22 += h2 * j2
+        f23 += h2 * j3
+        f24 += h2 * fb
+        f25 += h2 * j5
+        f26 += h2
+        f27 += h2 * dx
+        f28 += h2 * dx2
+        h3 = wh * j3
+        f33 += h3 * j3
+        f34 += h3 * fb
+        f35 += h3 * j5
+        f36 += h3
+        f37 += h3 * dx
+        f38 += h3 * dx2
+        h4 = wh * fb
+        f44 += h4 * fb
+        f45 += h4 * j5
+        f46 += h4
+        f47 += h4 * dx
+        f48 += h4 * dx2
+        h5 = wh * j5
+        f55 += h5 * j5
+        f56 += h5
+        f57 += h5 * dx
+        f58 += h5 * dx2
+        hd = wh * dx2
+        m0 += wh
+        m1 += wh * dx
+        m2 += hd
+        m3 += hd * dx
+        m4 += hd * dx2
+    g[0] = g0
+    g[1] = g1
+    g[2] = g2
+    g[3] = g3
+    g[4] = g4
+    g[5] = g5
+    g[6] = g6
+    g[7] = g7
+    g[8] = g8
+    fm[0, 0] = fm[0, 0] = f00
+    fm[0, 1] = fm[1, 0] = f01
+    fm[0, 2] = fm[2, 0] = f02
+    fm[0, 3] = fm[3, 0] = f03
+    fm[0, 4] = fm[4, 0] = f04
+    fm[0, 5] = fm[5, 0] = f05
+    fm[0, 6] = fm[6, 0] = f06
+    fm[0, 7] = fm[7, 0] = f07
+    fm[0, 8] = fm[8, 0] = f08
+    fm[1, 1] = fm[1, 1] = f11
+    fm[1, 2] = fm[2, 1] = f12
+    fm[1, 3] = fm[3, 1] = f13
+    fm[1, 4] = fm[4, 1] = f14
+    fm[1, 5] = fm[5, 1] = f15
+    fm[1, 6] = fm[6, 1] = f16
+    fm[1, 7] = fm[7, 1] = f17
+    fm[1, 8] = fm[8, 1] = f18
+    fm[2, 2] = fm[2, 2] = f22
+    fm[2, 3] = fm[3, 2] = f23
+    fm[2, 4] = fm[4, 2] = f24
+    fm[2, 5] = fm[5, 2] = f25
+    fm[2, 6] = fm[6, 2] = f26
+    fm[2, 7] = fm[7, 2] = f27
+    fm[2, 8] = fm[8, 2] = f28
+    fm[3, 3] = fm[3, 3] = f33
+    fm[3, 4] = fm[4, 3] = f34
+    fm[3, 5] = fm[5, 3] = f35
+    fm[3, 6] = fm[6, 3] = f36
+    fm[3, 7] = fm[7, 3] = f37
+    fm[3, 8] = fm[8, 3] = f38
+    fm[4, 4] = fm[4, 4] = f44
+    fm[4, 5] = fm[5, 4] = f45
+    fm[4, 6] = fm[6, 4] = f46
+    fm[4, 7] = fm[7, 4] = f47
+    fm[4, 8] = fm[8, 4] = f48
+    fm[5, 5] = fm[5, 5] = f55
+    fm[5, 6] = fm[6, 5] = f56
+    fm[5, 7] = fm[7, 5] = f57
+    fm[5, 8] = fm[8, 5] = f58
+    fm[6, 6] = m0
+    fm[6, 7] = fm[7, 6] = m1
+    fm[6, 8] = fm[8, 6] = fm[7, 7] = m2
+    fm[7, 8] = fm[8, 7] = m3
+    fm[8, 8] = m4
+    return chi2
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FAST)
+def _linear_start_pair(theta, shape, rn2, x0, n, y, extra, mf, dxr, e, u, a_mat, low, rhs, sol):
+    """:func:`_linear_start` for two Lorentzian or Gaussian lines on a quadratic background, fused."""
+    ea0, ea1, ea2, eb0, eb1, eb2 = e
+    ua0, ub0 = u[0], u[3]
+    if shape == LORENTZIAN:
+        lorentz_edges(x0, n, theta[0], 1.0 / theta[2], ea0, ea1, ea2)
+        lorentz_edges(x0, n, theta[3], 1.0 / theta[5], eb0, eb1, eb2)
+    else:
+        gauss_edges(x0, n, theta[0], 1.0 / theta[2], ea0, ea1, ea2)
+        gauss_edges(x0, n, theta[3], 1.0 / theta[5], eb0, eb1, eb2)
+    saa = sab = sa1 = sax = sax2 = sbb = sb1 = sbx = sbx2 = 0.0
+    s11 = s1x = sxx = sx3 = sx4 = 0.0
+    ra = rb = r1 = rx = rx2 = 0.0
+    for i in range(n):
+        wgt = mf[i] / max(y[i] + extra[i] + rn2, 1.0)
+        fa = ua0[i] - ea0[i]
+        fb = ub0[i] - eb0[i]
+        dx = dxr[i]
+        dx2 = dx * dx
+        wa = wgt * fa
+        wb = wgt * fb
+        wy = wgt * y[i]
+        saa += wa * fa
+        sab += wa * fb
+        sa1 += wa
+        sax += wa * dx
+        sax2 += wa * dx2
+        sbb += wb * fb
+        sb1 += wb
+        sbx += wb * dx
+        sbx2 += wb * dx2
+        s11 += wgt
+        s1x += wgt * dx
+        sxx += wgt * dx2
+        sx3 += wgt * dx2 * dx
+        sx4 += wgt * dx2 * dx2
+        ra += wy * fa
+        rb += wy * fb
+        r1 += wy
+        rx += wy * dx
+        rx2 += wy * dx2
+    rows = ((saa, sab, sa1, sax, sax2), (sab, sbb, sb1, sbx, sbx2), (sa1, sb1, s11, s1x, sxx),
+            (sax, sbx, s1x, sxx, sx3), (sax2, sbx2, sxx, sx3, sx4))
+    for q in range(5):
+        for r in range(5):
+            a_mat[q, r] = rows[q][r]
+        a_mat[q, q] *= 1.0 + 1e-9
+    rhs[0], rhs[1], rhs[2], rhs[3], rhs[4] = ra, rb, r1, rx, rx2
+    five = np.int64(5)
+    if not _cholesky(a_mat, five, low):
+        return
+    _chol_solve(low, five, rhs, sol)
+    if sol[0] > 0.0 and sol[1] > 0.0 and math.isfinite(sol[0]) and math.isfinite(sol[1]):
+        theta[1] = sol[0]
+        theta[4] = sol[1]
+        theta[6] = sol[2]
+        theta[7] = sol[3]
+        theta[8] = sol[4]
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FAST)
 def _dnll(n, rn2, tot, tot2, y, extra, mf):
     """Change of the negative log-likelihood sum(m - y' log m) from ``tot`` to ``tot2`` and the sum of ``tot``.
 
@@ -639,16 +859,25 @@ def _lm(theta, k, cfg, x0, n, prof, ws):
     observed = np.bool_(True)  # typed flags, not literals: one compiled version of each callee
     expected = np.bool_(False)
     # views for the fused single-line path, made once per fit
-    single = k == 1 and cfg.npl == 3 and cfg.nb == 3 and (cfg.shape == LORENTZIAN or cfg.shape == GAUSSIAN)
+    fused = cfg.npl == 3 and cfg.nb == 3 and (cfg.shape == LORENTZIAN or cfg.shape == GAUSSIAN)
+    single = fused and k == 1
+    pair = fused and k == 2
     edges = ws.edges
     e3 = (edges[0], edges[1], edges[2])
     u3 = (edges[0, 1:n + 1], edges[1, 1:n + 1], edges[2, 1:n + 1])
+    e6 = (edges[0], edges[1], edges[2], edges[3], edges[4], edges[5])
+    u6 = (edges[0, 1:n + 1], edges[1, 1:n + 1], edges[2, 1:n + 1], edges[3, 1:n + 1], edges[4, 1:n + 1],
+          edges[5, 1:n + 1])
     dxr = ws.jr[k * cfg.npl + 1]
     if single:
         _linear_start_single(theta, cfg.shape, rn2, x0, n, y, extra, mf, dxr, e3, u3, work, low, rhs, step)
+    elif pair:
+        _linear_start_pair(theta, cfg.shape, rn2, x0, n, y, extra, mf, dxr, e6, u6, work, low, rhs, step)
     else:
         _linear_start(theta, k, cfg, x0, n, prof, ws)
-    if single:
+    if pair:
+        _evaluate_pair(theta, cfg.shape, rn2, x0, n, observed, y, extra, mf, dxr, tot, e6, u6, fm, g)
+    elif single:
         _evaluate_single(theta, cfg.shape, rn2, x0, n, observed, y, extra, mf, dxr, tot, e3, u3, fm, g)
     else:
         _evaluate(theta, k, cfg, x0, n, prof, observed, ws, tot, fm, g)
@@ -675,7 +904,9 @@ def _lm(theta, k, cfg, x0, n, prof, ws):
                 theta[a] = trial[a]
             converged = True
             break
-        if single:
+        if pair:
+            _evaluate_pair(trial, cfg.shape, rn2, x0, n, observed, y, extra, mf, dxr, tot2, e6, u6, fm2, g2)
+        elif single:
             _evaluate_single(trial, cfg.shape, rn2, x0, n, observed, y, extra, mf, dxr, tot2, e3, u3, fm2, g2)
         else:
             _evaluate(trial, k, cfg, x0, n, prof, observed, ws, tot2, fm2, g2)
@@ -697,7 +928,9 @@ def _lm(theta, k, cfg, x0, n, prof, ws):
             break
         if lam >= 1e12:
             break
-    if single:
+    if pair:
+        chi2 = _evaluate_pair(theta, cfg.shape, rn2, x0, n, expected, y, extra, mf, dxr, tot, e6, u6, fm, g)
+    elif single:
         chi2 = _evaluate_single(theta, cfg.shape, rn2, x0, n, expected, y, extra, mf, dxr, tot, e3, u3, fm, g)
     else:
         chi2 = _evaluate(theta, k, cfg, x0, n, prof, expected, ws, tot, fm, g)
@@ -1207,6 +1440,7 @@ def prepare_rows(raw, s0, s1, base, cfg, kernel, filled, finite, det, n_det):
     n = raw.shape[1]
     ws = _workspace(n)
     wf = ws.wf
+    work32 = np.empty((4, n), dtype=np.float32)
     has_base = cfg.base_mode != 0
     for s in range(s0, s1):
         fill_row(raw[s], filled[s], finite[s])
@@ -1214,7 +1448,7 @@ def prepare_rows(raw, s0, s1, base, cfg, kernel, filled, finite, det, n_det):
             snip_row(filled[s], cfg.snip_window, base[s])
         brow = base[s] if has_base else base[0]
         n_det[s] = detect_row(filled[s], brow, has_base, finite[s], cfg.read_noise_e, kernel, cfg.snr_min,
-                              cfg.radius, det[s], ws.snr, wf[_HGT], cfg.peak_frac, wf[_RES], wf[_VAR], wf[_SCORE])
+                              cfg.radius, det[s], ws.snr, wf[_HGT], cfg.peak_frac, wf[_SCORE], work32)
 
 
 @njit(cache=True, nogil=True, error_model="numpy")

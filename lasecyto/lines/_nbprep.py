@@ -100,16 +100,18 @@ def _reflect(i, n):
 
 @njit(cache=True, error_model="numpy", fastmath={"contract"})
 def detect_row(filled, base, has_base, finite, read_noise_e, kernel, snr_min, radius, pix, snr_out, height_out,
-               peak_frac, resid, var, score):
+               peak_frac, score, work32):
     """Matched-filter detection in one spectrum; writes peak pixels into ``pix`` and returns their count.
 
     ``resid`` = spectrum - baseline and ``var`` = max(spectrum, 0) + read noise^2
     (zero at non-finite pixels) are correlated with the zero-mean kernel and its
     square (edges reflected); the SNR is their ratio and a line is a strict
     local maximum of it within ``radius`` pixels (ties go to the leftmost) at or
-    above ``snr_min``.  ``height_out`` receives the filter's estimate of the
-    peak pixel value above background at every pixel, ``snr_out`` the SNR of
-    each detection.
+    above ``snr_min``.  The correlations run in single precision (relative
+    error ~1e-7, far below the noise; twice the SIMD width).  ``height_out``
+    receives the filter's estimate of the peak pixel value above background at
+    every pixel, ``snr_out`` the SNR of each detection; ``work32`` is float32
+    scratch of shape (4, >= n).
     """
     n = filled.size
     nk = kernel.size
@@ -118,14 +120,12 @@ def detect_row(filled, base, has_base, finite, read_noise_e, kernel, snr_min, ra
     norm = 0.0
     for j in range(nk):
         norm += kernel[j] * kernel[j]
+    resid, var, area, avar = work32[0], work32[1], work32[2], work32[3]
     for i in range(n):
         ok = finite[i]
         b = base[i] if has_base else 0.0
-        resid[i] = filled[i] - b if ok else 0.0
-        var[i] = max(max(filled[i], 0.0) + rn2, VARIANCE_FLOOR_E2) if ok else 0.0
-        height_out[i] = 0.0  # area accumulator
-        score[i] = 0.0       # area variance accumulator
-    area, avar = height_out, score
+        resid[i] = np.float32(filled[i] - b) if ok else np.float32(0.0)
+        var[i] = np.float32(max(max(filled[i], 0.0) + rn2, VARIANCE_FLOOR_E2)) if ok else np.float32(0.0)
     lo = min(h, n)
     hi = max(n - h, lo)
     m = hi - lo
@@ -133,15 +133,16 @@ def detect_row(filled, base, has_base, finite, read_noise_e, kernel, snr_min, ra
     a_in = area[lo:hi]
     v_in = avar[lo:hi]
     # the kernel is symmetric: taps h - j and h + j share a weight
-    kh = kernel[h]
+    kh = np.float32(kernel[h])
+    kh2 = np.float32(kernel[h] * kernel[h])
     r_h = resid[h:h + m]
     q_h = var[h:h + m]
     for i in range(m):
         a_in[i] = kh * r_h[i]
-        v_in[i] = kh * kh * q_h[i]
+        v_in[i] = kh2 * q_h[i]
     for j in range(1, h + 1):
-        kj = kernel[h + j]
-        k2 = kj * kj
+        kj = np.float32(kernel[h + j])
+        k2 = np.float32(kernel[h + j] * kernel[h + j])
         r_lo = resid[h - j:h - j + m]
         r_hi = resid[h + j:h + j + m]
         q_lo = var[h - j:h - j + m]
