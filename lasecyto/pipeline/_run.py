@@ -39,6 +39,7 @@ from ..io import atomic_path, missing_files, read_manifest, read_sidecar, read_s
 from ._cell import CellJob, CellResult, process_cell
 from ._engines import PARALLEL_MIN_S, Engine, make_engine
 from ._experiment import finish_experiment
+from ._instrument import lamp_instrument
 from ._params import find_recipe, load_recipe, parameter_problems
 from ._patterns import image_job_fields
 from ._store import AssembledTables, FileHashes, ItemStore, TableFiles, item_key, run_lock
@@ -342,11 +343,12 @@ def _run_locked(manifest, params, plan, out_dir, *, engine, resume, show_progres
     file_hash = FileHashes()
 
     items = []
-    lamp_axis, lamp_error, calib_summary = None, None, None
+    lamp_axis, lamp_error, calib_summary, instrument = None, None, None, None
     if manifest.lamp is not None:
         try:
             solution, calib_summary = calibrate_lamp(manifest.lamp, params)
             lamp_axis = solution.axis()
+            instrument, calib_summary["instrument"] = lamp_instrument(manifest.lamp)
             _write_text(out_dir / "calibration.txt", solution.report() + "\n")
             items.append({"item": "lamp", "status": "ok", "error": "", "seconds": None})
         except (LasecytoError, OSError) as exc:
@@ -371,7 +373,8 @@ def _run_locked(manifest, params, plan, out_dir, *, engine, resume, show_progres
                             parameters=params, lamp_axis=lamp_axis, lamp_error=lamp_error,
                             resonator=manifest.resonator, medium=manifest.medium,
                             cell_thickness_um=float(c.cell_thickness_um), kind=manifest.kind,
-                            sphere=manifest.sphere, pump=manifest.pump, **image_job_fields(manifest, c)))
+                            sphere=manifest.sphere, pump=manifest.pump, instrument=instrument,
+                            **image_job_fields(manifest, c)))
 
     total = len(manifest.cells)
     done = 0
