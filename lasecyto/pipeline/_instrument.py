@@ -10,21 +10,21 @@ from ..calibration import measure_instrument_profile
 from ..exceptions import LasecytoError
 from ..io import read_sidecar, read_stack
 
-__all__ = ["lamp_instrument"]
+__all__ = ["lamp_instrument", "lamp_spectrum"]
 
 logger = logging.getLogger("lasecyto.pipeline")
 
 
 def lamp_spectrum(stack_path, sidecar_path):
-    """Mean lamp spectrum in photoelectrons (offset removed, summed over rows) and its read noise."""
+    """Mean lamp spectrum in photoelectrons (offset removed, rows summed), its read noise and the sidecar."""
     sidecar = read_sidecar(sidecar_path)
     with read_stack(stack_path) as stack:
-        raw = stack.read().astype(float)
+        raw = stack.read()  # (frames, pixels), detector rows summed
         n_rows, n_frames = stack.n_rows, stack.n_frames
     cam = sidecar.camera
-    spectrum_e = (raw.sum(axis=1).mean(axis=0) - cam.offset_counts * n_rows) / cam.gain_counts_per_e
+    spectrum_e = (raw.mean(axis=0) - cam.offset_counts * n_rows) / cam.gain_counts_per_e
     read_noise = cam.read_noise_e * np.sqrt(n_rows / max(n_frames, 1))
-    return spectrum_e, read_noise
+    return spectrum_e, read_noise, sidecar
 
 
 def lamp_instrument(lamp):
@@ -35,7 +35,7 @@ def lamp_instrument(lamp):
     ``lines.shape = "instrument"`` need it.
     """
     try:
-        spectrum_e, read_noise = lamp_spectrum(lamp.stack, lamp.sidecar)
+        spectrum_e, read_noise, _ = lamp_spectrum(lamp.stack, lamp.sidecar)
         profile = measure_instrument_profile(spectrum_e, read_noise_e=read_noise)
     except (LasecytoError, OSError) as exc:
         logger.warning("instrument function not measured from the lamp: %s", exc)

@@ -29,17 +29,15 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
-import numpy as np
-
 from .. import tables
 from .._version import __version__
 from ..calibration import reference_lines, solve_dispersion
 from ..exceptions import InputError, LasecytoError
-from ..io import atomic_path, missing_files, read_manifest, read_sidecar, read_stack, write_json, write_table
+from ..io import atomic_path, missing_files, read_manifest, write_json, write_table
 from ._cell import CellJob, CellResult, process_cell
 from ._engines import PARALLEL_MIN_S, Engine, make_engine
 from ._experiment import finish_experiment
-from ._instrument import lamp_instrument
+from ._instrument import lamp_instrument, lamp_spectrum
 from ._params import find_recipe, load_recipe, parameter_problems
 from ._patterns import image_job_fields
 from ._store import AssembledTables, FileHashes, ItemStore, TableFiles, item_key, run_lock
@@ -76,12 +74,7 @@ def calibrate_lamp(lamp, parameters):
     run record.
     """
     cp = parameters["calibration"]
-    with read_stack(lamp.stack) as stack:
-        sidecar = read_sidecar(lamp.sidecar)
-        raw = stack.read()
-    cam = sidecar.camera
-    spectrum_e = (raw.mean(axis=0) - cam.offset_counts * stack.n_rows) / cam.gain_counts_per_e
-    read_noise = cam.read_noise_e * np.sqrt(stack.n_rows / max(stack.n_frames, 1))
+    spectrum_e, read_noise, sidecar = lamp_spectrum(lamp.stack, lamp.sidecar)
     guess = sidecar.wavelength_guess or sidecar.wavelength
     if guess is None or guess.polynomial_nm is None:
         raise InputError("lamp sidecar has no nominal axis", path=lamp.sidecar, field="wavelength_guess",
