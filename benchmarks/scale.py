@@ -124,6 +124,8 @@ def main(argv=None):
     args = ap.parse_args(argv)
     sizes = [int(float(s)) for s in args.sizes.split(",")]
     fpc = args.frames_per_cell
+    if args.tmp is not None:
+        Path(args.tmp).mkdir(parents=True, exist_ok=True)
 
     with tempfile.TemporaryDirectory(prefix="lasecyto-scale-", dir=args.tmp) as tmp:
         tmp = Path(tmp)

@@ -64,6 +64,9 @@ _LINES = (
     _c("saturated", "bool", "", "a pixel of the fit window reached the saturation level"),
     _c("fit_ok", "bool", "", "the fit converged to a physical solution"),
     _c("fit_message", "str", "", "empty when fit_ok, else the reason"),
+    _c("cosmic_ray", "bool", "", "narrower than the instrument function and in one frame only (never lasing)",
+       fill=False),
+    _c("contrast", "float", "", "peak line signal over the background under it", fill=_NAN),
 )
 
 _TRACKS = _LINES + (

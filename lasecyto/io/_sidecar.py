@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 import math
 import numbers
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -16,16 +16,30 @@ from ..exceptions import InputError
 __all__ = ["CameraModel", "Sidecar", "check_sidecar", "default_sidecar_path", "read_sidecar"]
 
 SIDECAR_VERSION = 1
+#: value of ``camera.gain_counts_per_e`` asking for the photon-transfer gain (flat frames or the data)
+PHOTON_TRANSFER = "photon-transfer"
 
 
 @dataclass(frozen=True)
 class CameraModel:
-    """Linear camera: counts = offset + gain * photoelectrons (+ read noise), clipped at saturation."""
+    """Linear camera: counts = offset + gain * photoelectrons (+ read noise), clipped at saturation.
+
+    The numbers may also be measured: ``dark_stack`` names dark frames (offset
+    map and read noise), ``flat_stack`` frames of a steady broadband scene for
+    the photon-transfer gain, and ``gain_from_data`` asks for the
+    photon-transfer gain on the data stack itself (see
+    :func:`lasecyto.pipeline.resolve_camera`).  ``offset_map_counts`` is the
+    measured per-pixel offset (rows x pixels) once resolved.
+    """
 
     offset_counts: float = 0.0
     gain_counts_per_e: float = 1.0
     read_noise_e: float = 0.0
     saturation_counts: float = math.inf
+    dark_stack: Path | None = None
+    flat_stack: Path | None = None
+    gain_from_data: bool = False
+    offset_map_counts: np.ndarray | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -168,12 +182,35 @@ def read_sidecar(path) -> Sidecar:
     if not isinstance(cam, dict):
         raise InputError("bad camera block", path=path, field="camera", expected="an object",
                          found=type(cam).__name__)
+    frames = {}
+    for key in ("dark_stack", "flat_stack"):
+        value = cam.get(key)
+        if value is None:
+            frames[key] = None
+        elif isinstance(value, str) and value.strip():
+            frames[key] = (path.parent / value).resolve()
+        else:
+            raise InputError("bad camera frames entry", path=path, field=f"camera.{key}",
+                             expected="a path (relative to the sidecar) of a stack of frames", found=repr(value))
+    gain = cam.get("gain_counts_per_e", 1.0)
+    gain_from_data = False
+    if isinstance(gain, str):
+        if gain != PHOTON_TRANSFER:
+            raise InputError("bad value", path=path, field="camera.gain_counts_per_e",
+                             expected=f"a number > 0 or {PHOTON_TRANSFER!r}", found=repr(gain))
+        gain_from_data = frames["flat_stack"] is None
+        gain = 1.0  # replaced by the measurement
+    elif frames["flat_stack"] is not None and "gain_counts_per_e" in cam:
+        raise InputError("gain given twice", path=path, field="camera.gain_counts_per_e",
+                         expected=f"{PHOTON_TRANSFER!r} (or no flat_stack) when flat frames are named",
+                         found=repr(gain))
     camera = CameraModel(
         offset_counts=_number(cam.get("offset_counts", 0.0), path, "camera.offset_counts"),
-        gain_counts_per_e=_number(cam.get("gain_counts_per_e", 1.0), path, "camera.gain_counts_per_e", low=0.0),
+        gain_counts_per_e=_number(gain, path, "camera.gain_counts_per_e", low=0.0),
         read_noise_e=_number(cam.get("read_noise_e", 0.0), path, "camera.read_noise_e", low=0.0, strict=False),
         saturation_counts=_number(math.inf if cam.get("saturation_counts") is None else cam["saturation_counts"],
                                   path, "camera.saturation_counts", low=0.0, allow_inf=True),
+        dark_stack=frames["dark_stack"], flat_stack=frames["flat_stack"], gain_from_data=gain_from_data,
     )
     axes = {}
     for key in ("wavelength", "wavelength_guess"):

@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
-from scipy import ndimage
+from numba import njit, prange
 
 from ..exceptions import InputError
-from ._baseline import as_block, estimate_baseline, fill_nonfinite
-from ._crlb import model_variance
-from ._shapes import pixel_terms
+from ._baseline import as_block, estimate_baseline
+from ._nbprep import detect_row, fill_row
+from ._nbshape import LORENTZIAN, profile_block
 
 __all__ = ["detect_lines"]
 
@@ -25,65 +27,44 @@ def check_pos(name, value):
     return float(value)
 
 
-def matched_kernel(fwhm_px):
-    """Zero-mean, pixel-integrated Lorentzian kernel of unit area before centring.
+def detection_kernel(fwhm_px):
+    """Zero-mean, symmetric, pixel-integrated Lorentzian kernel (half length max(4, 3 FWHM)).
 
     Returns the kernel and the peak pixel fraction of the unit-area template.
     """
     half = int(np.ceil(max(4.0, 3.0 * fwhm_px)))
     x = np.arange(-half, half + 1, dtype=float)
-    template, _, _ = pixel_terms(x, 0.0, fwhm_px, "lorentzian")
-    return template - template.mean(), float(template[half])
+    template = np.empty((1, x.size))
+    profile_block(LORENTZIAN, x, np.zeros(1), np.array([float(fwhm_px)]), np.ones(1), np.zeros(8), 0.0, 1.0,
+                  template)
+    template = 0.5 * (template[0] + template[0][::-1])  # exactly symmetric
+    return np.ascontiguousarray(template - template.mean()), float(template[half])
 
 
-def _local_maxima(score, radius):
-    """Local maxima of each row within +-radius; plateaus keep their leftmost pixel."""
-    s, n = score.shape
-    pad = np.pad(score, ((0, 0), (radius, radius)), constant_values=-np.inf)
-    is_max = np.ones((s, n), dtype=bool)
-    for k in range(1, radius + 1):
-        is_max &= score > pad[:, radius - k:radius - k + n]   # strictly above the left neighbours
-        is_max &= score >= pad[:, radius + k:radius + k + n]  # not below the right neighbours
-    return is_max
-
-
-def _detect(block, baseline, finite, read_noise_e, snr_min, fwhm_guess_px, min_separation_px,
-            extra_widths=()):
-    """Core detection on a filled (S, N) block; returns the result dict."""
-    resid = np.where(finite, block - baseline, 0.0)
-    var = np.where(finite, model_variance(block, read_noise_e), 0.0)
-    radius = max(1, int(np.floor(min_separation_px)))
-    found = np.zeros(block.shape, dtype=bool)
-    covered = np.zeros(block.shape, dtype=bool)
-    best_snr = np.zeros(block.shape)
-    best_height = np.zeros(block.shape)
-    for factor in (1.0,) + tuple(extra_widths):
-        fwhm = fwhm_guess_px * factor
-        kernel, peak_frac = matched_kernel(fwhm)
-        norm = np.sum(kernel ** 2)
-        # least-squares area of a unit-area template on a free local constant
-        area = ndimage.correlate1d(resid, kernel, axis=1, mode="reflect") / norm
-        area_var = ndimage.correlate1d(var, kernel ** 2, axis=1, mode="reflect") / norm ** 2
-        ok = area_var > 0
-        snr = np.where(ok & finite, area / np.sqrt(np.where(ok, area_var, 1.0)), 0.0)
-        peaks = _local_maxima(snr, max(radius, int(np.floor(0.5 * fwhm)))) & (snr >= snr_min) & finite
-        # a wider kernel adds only lines that the narrower ones did not already find nearby
-        new = peaks & ~covered
-        found |= new
-        best_snr = np.where(new, snr, best_snr)
-        best_height = np.where(new, area * peak_frac, best_height)
-        covered |= ndimage.maximum_filter1d(found, size=2 * int(np.ceil(fwhm)) + 1, axis=1)
-    spec, pix = np.nonzero(found)  # row-major: spectrum, then pixel order
-    return {
-        "spectrum": spec.astype(np.int64),
-        "pixel": pix.astype(np.int64),
-        "height_e": best_height[spec, pix],
-        "snr": best_snr[spec, pix],
-    }
+@njit(cache=True, parallel=True, error_model="numpy")
+def _detect_block(raw, base, has_base, read_noise_e, kernel, snr_min, radius, peak_frac):
+    s_count, n = raw.shape
+    cap = n // 2 + 1
+    pix = np.zeros((s_count, cap), dtype=np.int64)
+    snr = np.zeros((s_count, cap))
+    height = np.zeros((s_count, cap))
+    count = np.zeros(s_count, dtype=np.int64)
+    for s in prange(s_count):
+        filled = np.empty(n)
+        finite = np.empty(n, dtype=np.bool_)
+        scratch = np.empty((2, n))
+        work32 = np.empty((4, n), dtype=np.float32)
+        fill_row(raw[s], filled, finite)
+        brow = base[s] if has_base else base[0]
+        count[s] = detect_row(filled, brow, has_base, finite, read_noise_e, kernel, snr_min, radius, pix[s],
+                              snr[s], scratch[0], peak_frac, scratch[1], work32)
+        for m in range(count[s]):
+            height[s, m] = scratch[0, pix[s, m]]
+    return pix, snr, height, count
 
 
 def detect_lines(spectra_e, *, baseline_e=None, read_noise_e=0.0, snr_min=5.0, fwhm_guess_px=2.5,
-                 min_separation_px=1.5, extra_widths=()):
+                 min_separation_px=1.5):
     """Find narrow lines in a block of spectra with a matched filter.
 
     The baseline-subtracted spectrum is correlated with a zero-mean,
@@ -91,10 +72,8 @@ def detect_lines(spectra_e, *, baseline_e=None, read_noise_e=0.0, snr_min=5.0, f
     ``max(4, 3 * fwhm)`` px), which is the least-squares amplitude of a line on
     a free local constant.  Its variance follows from the Poisson + read-noise
     model, ``var_i = max(y_i, 0) + read_noise_e**2``; a line is a local maximum
-    of the resulting SNR, within ``+-min_separation_px``, at or above
-    ``snr_min``.  Kernels ``extra_widths`` times wider are then tried, in
-    order, and add the lines they find away from those already found (faint
-    broad lines); close pairs stay resolved by the narrowest kernel.
+    of the resulting SNR, within ``+-max(1, floor(min_separation_px),
+    floor(fwhm_guess_px / 2))`` pixels, at or above ``snr_min``.
 
     Parameters
     ----------
@@ -110,8 +89,6 @@ def detect_lines(spectra_e, *, baseline_e=None, read_noise_e=0.0, snr_min=5.0, f
         FWHM of the matched kernel, pixels.
     min_separation_px : float
         Two detections are at least this far apart (and at least 2 px).
-    extra_widths : tuple of float
-        Widths, in units of ``fwhm_guess_px``, of the further kernels; ``()`` for one kernel.
 
     Returns
     -------
@@ -120,20 +97,26 @@ def detect_lines(spectra_e, *, baseline_e=None, read_noise_e=0.0, snr_min=5.0, f
         estimate of the peak pixel value above background for a line of the
         guessed width) and ``snr``, one entry per line, in spectrum then pixel order.
     """
-    block, was_1d = as_block(spectra_e)
+    block, _ = as_block(spectra_e)
     read_noise_e = check_nonneg("read_noise_e", read_noise_e)
     snr_min = check_pos("snr_min", snr_min)
     fwhm_guess_px = check_pos("fwhm_guess_px", fwhm_guess_px)
     min_separation_px = check_nonneg("min_separation_px", min_separation_px)
-    filled, finite = fill_nonfinite(block)
     if baseline_e is None:
-        baseline = estimate_baseline(filled)
+        baseline = estimate_baseline(block)
     else:
         baseline, _ = as_block(baseline_e, field="baseline_e")
         if baseline.shape != block.shape:
             raise InputError("baseline shape differs from the spectra", field="baseline_e",
                              expected=f"shape {block.shape}", found=f"shape {baseline.shape}")
-        baseline, _ = fill_nonfinite(baseline)
-    extra_widths = tuple(float(check_pos("extra_widths", f)) for f in extra_widths)
-    return _detect(filled, baseline, finite, read_noise_e, snr_min, fwhm_guess_px, min_separation_px,
-                   extra_widths)
+        baseline = np.where(np.isfinite(baseline), baseline, 0.0)
+    kernel, peak_frac = detection_kernel(fwhm_guess_px)
+    radius = int(max(1, math.floor(min_separation_px), math.floor(0.5 * fwhm_guess_px)))
+    pix, snr, height, count = _detect_block(np.ascontiguousarray(block, dtype=float),
+                                            np.ascontiguousarray(baseline, dtype=float), True, read_noise_e,
+                                            kernel, snr_min, radius, peak_frac)
+    rows = np.repeat(np.arange(block.shape[0]), count)
+    cols = np.concatenate([np.arange(c) for c in count]) if block.shape[0] else np.zeros(0, dtype=np.int64)
+    return {"spectrum": rows.astype(np.int64), "pixel": pix[rows, cols].astype(np.int64),
+            "height_e": height[rows, cols], "snr": snr[rows, cols]}
+

@@ -20,6 +20,7 @@ from ..cavity import cell_frames
 from ..exceptions import InputError, LasecytoError
 from ..features import summarize_cell
 from ..io import check_sidecar, read_sidecar, read_stack
+from ..lines import InstrumentProfile
 from ._experiment import complete_cell
 from ._lines_stage import stack_lines
 from ._patterns import run_pattern_cell
@@ -58,6 +59,7 @@ class CellJob:
     kind: str = "time-lapse"
     sphere: dict | None = None
     pump: dict | None = None
+    instrument: InstrumentProfile | None = None  # instrument function measured from the lamp frame
 
 
 @dataclass
@@ -120,7 +122,7 @@ def cell_lines(job: CellJob):
             r0, r1 = 0, stack.n_rows
         times = sidecar.frame_times_s
         lines = stack_lines(stack, cam, axis, times, rows=(r0, r1), cell_id=job.cell_id,
-                            parameters=job.parameters)
+                            parameters=job.parameters, instrument=job.instrument)
         return lines, times, stack.n_frames, sidecar
 
 

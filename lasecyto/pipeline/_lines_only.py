@@ -6,14 +6,15 @@ For users who want fitted lines without tracking, cavity inversion or verdicts
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from ..calibration import WavelengthAxis, reference_lines, solve_dispersion
-from ..exceptions import InputError
+from ..calibration import WavelengthAxis, measure_instrument_profile, reference_lines, solve_dispersion
+from ..exceptions import CalibrationError, InputError
 from ..io import CameraModel, check_sidecar, default_sidecar_path, read_sidecar, read_stack
 from ._lines_stage import stack_lines
 from ._params import resolve_parameters
@@ -30,21 +31,25 @@ def _lamp_axis(lamp_path, reference, sidecar, camera, calib):
         raise InputError("lamp calibration needs a nominal axis", path=None if sidecar is None else sidecar.path,
                          field="wavelength_guess", expected="polynomial_nm coefficients in the sidecar",
                          found="none")
-    with read_stack(lamp_path) as lamp:
-        raw = lamp.read_rows(0, lamp.n_frames).astype(float)
-        n_rows = lamp.n_rows
-    spectrum_e = (raw.sum(axis=1).mean(axis=0) - camera.offset_counts * n_rows) / camera.gain_counts_per_e
+    spectrum_e, read_noise = _lamp_spectrum(lamp_path, camera)
     ref = reference_lines(reference)
     solution = solve_dispersion(spectrum_e, ref["wavelength_air_nm"].to_numpy(),
                                 guess_nm=tuple(guess.polynomial_nm), degree=calib["degree"],
-                                read_noise_e=camera.read_noise_e * math.sqrt(n_rows),
-                                clip_sigma=calib["clip_sigma"], snr_min=calib["snr_min"],
+                                read_noise_e=read_noise, clip_sigma=calib["clip_sigma"], snr_min=calib["snr_min"],
                                 reference_intensity=ref["relative_intensity"].to_numpy())
     return solution.axis()
 
 
+def _lamp_spectrum(lamp_path, camera):
+    with read_stack(lamp_path) as lamp:
+        raw = lamp.read_rows(0, lamp.n_frames).astype(float)
+        n_rows, n_frames = lamp.n_rows, lamp.n_frames
+    spectrum_e = (raw.sum(axis=1).mean(axis=0) - camera.offset_counts * n_rows) / camera.gain_counts_per_e
+    return spectrum_e, camera.read_noise_e * math.sqrt(n_rows / max(n_frames, 1))
+
+
 def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference=None, cell_id=None,
-              progress=None) -> pd.DataFrame:
+              camera=None, progress=None) -> pd.DataFrame:
     """Fit every line of every frame of a spectral stack.
 
     Parameters
@@ -62,7 +67,13 @@ def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference
     lamp, reference : optional
         Lamp frame (a stack) and its reference line set (e.g. ``"Ne I"``),
         calibrated against the sidecar's ``wavelength_guess`` when the sidecar
-        and the stack carry no wavelength axis.
+        and the stack carry no wavelength axis.  The lamp frame also gives the
+        instrument function (used by ``lines.shape = "instrument"`` and as the
+        width reference of the lasing and cosmic-ray tests); it is read with the
+        stack's camera model.
+    camera : dict, optional
+        Camera fields replacing the sidecar's (``dark_stack``, ``flat_stack``,
+        ``gain_from_data``, or numbers; see :class:`lasecyto.io.CameraModel`).
     cell_id : str, optional
         Value of the ``cell_id`` column (default: the stack file stem).
     progress : callable, optional
@@ -79,7 +90,14 @@ def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference
     if sidecar is None and default_sidecar_path(stack_path).is_file():
         sidecar = default_sidecar_path(stack_path)
     side = None if sidecar is None else read_sidecar(sidecar)
-    camera = CameraModel() if side is None else side.camera
+    cam = CameraModel() if side is None else side.camera
+    if camera:
+        try:
+            cam = dataclasses.replace(cam, **camera)
+        except TypeError:
+            raise InputError("unknown camera field", field="camera",
+                             expected=f"fields of CameraModel {sorted(f.name for f in dataclasses.fields(cam))}",
+                             found=sorted(camera)) from None
     cell = stack_path.stem if cell_id is None else str(cell_id)
     with read_stack(stack_path) as stack:
         if side is not None:
@@ -89,12 +107,22 @@ def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference
         elif stack.axis_nm is not None:
             axis = WavelengthAxis(values_nm=tuple(stack.axis_nm), medium=stack.axis_medium or "vacuum")
         elif lamp is not None:
-            axis = _lamp_axis(lamp, reference, side, camera, p["calibration"])
+            axis = _lamp_axis(lamp, reference, side, cam, p["calibration"])
         else:
             raise InputError("no wavelength axis for the stack", path=stack_path, field="wavelength",
                              expected="an axis in the sidecar or the stack, or --lamp with --reference",
                              found="none")
+        instrument = None
+        if lamp is not None:
+            spectrum_e, read_noise = _lamp_spectrum(lamp, cam)
+            try:
+                instrument = measure_instrument_profile(spectrum_e, read_noise_e=read_noise)
+            except CalibrationError as exc:
+                if p["lines"]["shape"] == "instrument":
+                    raise InputError(f"instrument function not measured: {exc}", path=lamp, field="lamp",
+                                     expected="bright isolated lamp lines", found="too few") from None
         n_frames = stack.n_frames
         times = (np.full(n_frames, np.nan) if side is None
                  else np.asarray(side.frame_times_s, dtype=float))
-        return stack_lines(stack, camera, axis, times, cell_id=cell, parameters=p, progress=progress)
+        return stack_lines(stack, cam, axis, times, cell_id=cell, parameters=p, instrument=instrument,
+                           progress=progress)

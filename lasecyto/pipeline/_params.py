@@ -38,10 +38,15 @@ DEFAULT_PARAMETERS: dict[str, dict] = {
         "baseline": "snip",
         "baseline_window_px": 30,
         "block_frames": 256,      # frames read and fitted together
+        "voigt_gaussian_fwhm_px": 0.0,  # Voigt only: fixed Gaussian FWHM, 0 = fitted
+        "cosmic_width_ratio": 0.5,      # spikes narrower than this many instrument FWHM ...
+        "cosmic_match_px": 1.5,         # ... with no line this close in the next or previous frame
     },
     "lasing": {
-        "max_fwhm_px": 8.0,       # wider lines are fluorescence, not lasing
+        "max_fwhm_px": 8.0,       # wider lines are fluorescence, not lasing (without a lamp)
         "snr_min": 10.0,
+        "max_width_ratio": 1.5,   # with a lamp: at most this many instrument FWHM wide
+        "min_contrast": 1.0,      # peak at least this many times the background under it
     },
     "tracks": {
         "max_step_nm": 0.15,      # gate per frame after motion prediction

@@ -29,16 +29,15 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
-import numpy as np
-
 from .. import tables
 from .._version import __version__
 from ..calibration import reference_lines, solve_dispersion
 from ..exceptions import InputError, LasecytoError
-from ..io import atomic_path, missing_files, read_manifest, read_sidecar, read_stack, write_json, write_table
+from ..io import atomic_path, missing_files, read_manifest, write_json, write_table
 from ._cell import CellJob, CellResult, process_cell
 from ._engines import PARALLEL_MIN_S, Engine, make_engine
 from ._experiment import finish_experiment
+from ._instrument import lamp_instrument, lamp_spectrum
 from ._params import find_recipe, load_recipe, parameter_problems
 from ._patterns import image_job_fields
 from ._store import AssembledTables, FileHashes, ItemStore, TableFiles, item_key, run_lock
@@ -75,12 +74,7 @@ def calibrate_lamp(lamp, parameters):
     run record.
     """
     cp = parameters["calibration"]
-    with read_stack(lamp.stack) as stack:
-        sidecar = read_sidecar(lamp.sidecar)
-        raw = stack.read()
-    cam = sidecar.camera
-    spectrum_e = (raw.mean(axis=0) - cam.offset_counts * stack.n_rows) / cam.gain_counts_per_e
-    read_noise = cam.read_noise_e * np.sqrt(stack.n_rows / max(stack.n_frames, 1))
+    spectrum_e, read_noise, sidecar = lamp_spectrum(lamp.stack, lamp.sidecar)
     guess = sidecar.wavelength_guess or sidecar.wavelength
     if guess is None or guess.polynomial_nm is None:
         raise InputError("lamp sidecar has no nominal axis", path=lamp.sidecar, field="wavelength_guess",
@@ -342,11 +336,12 @@ def _run_locked(manifest, params, plan, out_dir, *, engine, resume, show_progres
     file_hash = FileHashes()
 
     items = []
-    lamp_axis, lamp_error, calib_summary = None, None, None
+    lamp_axis, lamp_error, calib_summary, instrument = None, None, None, None
     if manifest.lamp is not None:
         try:
             solution, calib_summary = calibrate_lamp(manifest.lamp, params)
             lamp_axis = solution.axis()
+            instrument, calib_summary["instrument"] = lamp_instrument(manifest.lamp)
             _write_text(out_dir / "calibration.txt", solution.report() + "\n")
             items.append({"item": "lamp", "status": "ok", "error": "", "seconds": None})
         except (LasecytoError, OSError) as exc:
@@ -371,7 +366,8 @@ def _run_locked(manifest, params, plan, out_dir, *, engine, resume, show_progres
                             parameters=params, lamp_axis=lamp_axis, lamp_error=lamp_error,
                             resonator=manifest.resonator, medium=manifest.medium,
                             cell_thickness_um=float(c.cell_thickness_um), kind=manifest.kind,
-                            sphere=manifest.sphere, pump=manifest.pump, **image_job_fields(manifest, c)))
+                            sphere=manifest.sphere, pump=manifest.pump, instrument=instrument,
+                            **image_job_fields(manifest, c)))
 
     total = len(manifest.cells)
     done = 0

@@ -18,12 +18,17 @@ neon_relative_intensities  their NIST relative intensities
 fp_mode_wavelengths   exact resonances of a dispersive Fabry-Perot gap
 mode_trajectories     a drifting mode comb with crossings, dropouts, hops and true identities
 water_index_daimon    refractive index of water at 20 degC
+camera_frames         frames of a steady scene through a known camera (offset, gain, read noise)
+slit_line_photons     narrow lines through a slit-image instrument function (optionally asymmetric)
+add_cosmic_rays       single-pixel cosmic-ray hits added to frames
 """
 
 from ._experiment import write_fp_experiment, write_pattern_experiment
 from ._pump_scenario import write_pump_experiment
 from ._sphere_scenario import write_sphere_experiment
 from ._wgm import wgm_resonances
+from ._camera import add_cosmic_rays, camera_frames, slit_line_photons
+from ._experiment import write_fp_experiment
 from ._media import water_index_daimon
 from ._modes import fp_mode_wavelengths
 from ._neon import neon_lines_air_nm, neon_relative_intensities
@@ -45,4 +50,7 @@ __all__ = [
     "water_index_daimon",
     "mode_trajectories",
     "TRAJECTORY_SCENARIO",
+    "camera_frames",
+    "slit_line_photons",
+    "add_cosmic_rays",
 ]

@@ -113,3 +113,27 @@ def test_missing_required_key(tmp_path):
         read_sidecar(_write(tmp_path / "s.json", doc))
     with pytest.raises(InputError, match="not found"):
         read_sidecar(tmp_path / "absent.json")
+
+
+def test_camera_frames_named_in_the_sidecar(tmp_path):
+    # dark and flat stacks are paths relative to the sidecar; "photon-transfer" asks for the measured gain
+    doc = _base(3) | {"camera": {"dark_stack": "calib/dark.tif", "flat_stack": "calib/flat.tif",
+                                 "gain_counts_per_e": "photon-transfer", "saturation_counts": 65535}}
+    sc = read_sidecar(_write(tmp_path / "cell.json", doc))
+    assert sc.camera.dark_stack == (tmp_path / "calib" / "dark.tif").resolve()
+    assert sc.camera.flat_stack == (tmp_path / "calib" / "flat.tif").resolve()
+    assert not sc.camera.gain_from_data
+    doc = _base(3) | {"camera": {"gain_counts_per_e": "photon-transfer"}}
+    assert read_sidecar(_write(tmp_path / "data.json", doc)).camera.gain_from_data
+
+
+@pytest.mark.parametrize("camera, field", [
+    ({"dark_stack": 3}, "camera.dark_stack"),
+    ({"flat_stack": ""}, "camera.flat_stack"),
+    ({"gain_counts_per_e": "measure it"}, "camera.gain_counts_per_e"),
+    ({"flat_stack": "f.tif", "gain_counts_per_e": 2.0}, "camera.gain_counts_per_e"),
+])
+def test_bad_camera_frames_entries(tmp_path, camera, field):
+    with pytest.raises(InputError) as err:
+        read_sidecar(_write(tmp_path / "s.json", _base(3) | {"camera": camera}))
+    assert err.value.field == field

@@ -161,7 +161,7 @@ def test_bad_input_flags_not_exceptions():
     # one-dimensional input works too
     assert len(fit_lines(block[4])) == 2
     with pytest.raises(InputError, match="shape"):
-        fit_lines(block, shape="voigt")
+        fit_lines(block, shape="sinc")
 
 
 def test_is_lasing_rule():

@@ -56,3 +56,19 @@ def test_petal_and_rotation_identities():
 def test_bad_order_names_the_field():
     with pytest.raises(InputError, match="order"):
         parse_order("TEM01")
+
+
+def test_polynomial_recurrences_match_scipy():
+    # reference library: scipy.special.eval_hermite / eval_genlaguerre (the intensities use recurrences)
+    from scipy import special
+
+    from lasecyto.patterns._modes import _genlaguerre, _hermite
+
+    t = np.linspace(-4.0, 4.0, 257)
+    for n in range(1, 6):
+        np.testing.assert_allclose(_hermite(n, t), special.eval_hermite(n, t), rtol=1e-12, atol=1e-9)
+    u = np.linspace(0.0, 9.0, 257)
+    for p in range(1, 4):
+        for a in range(4):
+            np.testing.assert_allclose(_genlaguerre(p, a, u), special.eval_genlaguerre(p, a, u), rtol=1e-12,
+                                       atol=1e-12)

@@ -29,6 +29,11 @@ def test_run_writes_every_table_and_the_record(fp_run):
     assert set(record["versions"]) >= {"lasecyto", "numpy", "scipy", "pandas"}
     assert all(v["sha256"] for v in record["inputs"].values())
     assert record["calibration"]["rms_nm"] < 0.002
+    # the instrument function is measured from the same lamp frame: the generator's lamp lines are
+    # 2.5 px FWHM before pixel integration, which widens them a little
+    instrument = record["calibration"]["instrument"]
+    assert "error" not in instrument and instrument["n_lines"] >= 5
+    assert 2.5 <= instrument["fwhm_px"] <= 3.2
     assert fp_run.report is not None and fp_run.report.is_file()
 
 
