@@ -16,6 +16,7 @@ from __future__ import annotations
 import functools
 import json
 import math
+import uuid
 from pathlib import Path
 
 import numpy as np
@@ -302,12 +303,16 @@ def write_pattern_stack(path, *, n_frames=40, shape=(128, 128), pixel_size_um=0.
 def write_image_stack(path, frames, *, n_frames, shape, frame_interval_s, pixel_size_um, ome=True):
     """Write uint16 frames (an iterable, consumed one at a time) as an uncompressed, contiguous (OME-)TIFF.
 
-    OME metadata carry ``TimeIncrement`` (s) and ``PhysicalSizeX/Y`` (um).
+    OME metadata carry ``TimeIncrement`` (s) and ``PhysicalSizeX/Y`` (um), and a UUID derived from the
+    file name and the stack's design, so that the same inputs write identical bytes.
     """
     import tifffile
 
     if ome:
-        meta = {"axes": "TYX", "TimeIncrement": float(frame_interval_s), "TimeIncrementUnit": "s",
+        design = (f"lasecyto.synth:{Path(path).name}:{n_frames}:{tuple(shape)}:{frame_interval_s!r}:"
+                  f"{pixel_size_um!r}")
+        meta = {"axes": "TYX", "UUID": str(uuid.uuid5(uuid.NAMESPACE_URL, design)),
+                "TimeIncrement": float(frame_interval_s), "TimeIncrementUnit": "s",
                 "PhysicalSizeX": float(pixel_size_um), "PhysicalSizeXUnit": "\u00b5m",
                 "PhysicalSizeY": float(pixel_size_um), "PhysicalSizeYUnit": "\u00b5m"}
     else:

@@ -203,7 +203,7 @@ def test_same_seed_same_bytes(tmp_path):
         return hashlib.sha256(p.read_bytes()).hexdigest()
 
     for rel in ("spectra/A-01.tif", "spectra/B-imaging.tif", "lamp/neon.tif", "truth/modes.csv",
-                "experiment.toml"):
+                "experiment.toml", "images/A-field.ome.tif"):
         assert digest(m1.parent / rel) == digest(m2.parent / rel)
     assert digest(m1.parent / "spectra/A-01.tif") != digest(m3.parent / "spectra/A-01.tif")
     man = tomllib.loads(m1.read_text())
