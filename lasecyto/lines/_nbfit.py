@@ -785,7 +785,7 @@ def _linear_start_single(theta, shape, rn2, x0, n, y, extra, mf, dxr, e, u, a_ma
         lorentz_edges(x0, n, theta[0], inv, e0, e1, e2)
     else:
         gauss_edges(x0, n, theta[0], inv, e0, e1, e2)
-    sff = sf1 = sfx = sfx2 = s11 = s1x = sxx = sxx2 = sx2x2 = sx3 = 0.0
+    sff = sf1 = sfx = sfx2 = s11 = s1x = sxx = sx2x2 = sx3 = 0.0
     rf = r1 = rx = rx2 = 0.0
     for i in range(n):
         wgt = mf[i] / max(y[i] + extra[i] + rn2, 1.0)

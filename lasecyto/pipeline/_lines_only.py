@@ -7,7 +7,6 @@ For users who want fitted lines without tracking, cavity inversion or verdicts
 from __future__ import annotations
 
 import dataclasses
-import math
 from pathlib import Path
 
 import numpy as np
@@ -16,13 +15,14 @@ import pandas as pd
 from ..calibration import WavelengthAxis, measure_instrument_profile, reference_lines, solve_dispersion
 from ..exceptions import CalibrationError, InputError
 from ..io import CameraModel, check_sidecar, default_sidecar_path, read_sidecar, read_stack
+from ._instrument import lamp_spectrum
 from ._lines_stage import stack_lines
 from ._params import resolve_parameters
 
 __all__ = ["fit_stack"]
 
 
-def _lamp_axis(lamp_path, reference, sidecar, camera, calib):
+def _lamp_axis(spectrum_e, read_noise, reference, sidecar, calib):
     if reference is None:
         raise InputError("a lamp frame needs its reference line set", field="reference",
                          expected="a set name such as 'Ne I'", found="none")
@@ -31,21 +31,12 @@ def _lamp_axis(lamp_path, reference, sidecar, camera, calib):
         raise InputError("lamp calibration needs a nominal axis", path=None if sidecar is None else sidecar.path,
                          field="wavelength_guess", expected="polynomial_nm coefficients in the sidecar",
                          found="none")
-    spectrum_e, read_noise = _lamp_spectrum(lamp_path, camera)
     ref = reference_lines(reference)
     solution = solve_dispersion(spectrum_e, ref["wavelength_air_nm"].to_numpy(),
                                 guess_nm=tuple(guess.polynomial_nm), degree=calib["degree"],
                                 read_noise_e=read_noise, clip_sigma=calib["clip_sigma"], snr_min=calib["snr_min"],
                                 reference_intensity=ref["relative_intensity"].to_numpy())
     return solution.axis()
-
-
-def _lamp_spectrum(lamp_path, camera):
-    with read_stack(lamp_path) as lamp:
-        raw = lamp.read_rows(0, lamp.n_frames).astype(float)
-        n_rows, n_frames = lamp.n_rows, lamp.n_frames
-    spectrum_e = (raw.sum(axis=1).mean(axis=0) - camera.offset_counts * n_rows) / camera.gain_counts_per_e
-    return spectrum_e, camera.read_noise_e * math.sqrt(n_rows / max(n_frames, 1))
 
 
 def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference=None, cell_id=None,
@@ -99,6 +90,7 @@ def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference
                              expected=f"fields of CameraModel {sorted(f.name for f in dataclasses.fields(cam))}",
                              found=sorted(camera)) from None
     cell = stack_path.stem if cell_id is None else str(cell_id)
+    lamp_e = None if lamp is None else lamp_spectrum(lamp, cam)  # (spectrum_e, read_noise), read once
     with read_stack(stack_path) as stack:
         if side is not None:
             check_sidecar(side, stack)
@@ -107,14 +99,14 @@ def fit_stack(stack_path, *, sidecar=None, parameters=None, lamp=None, reference
         elif stack.axis_nm is not None:
             axis = WavelengthAxis(values_nm=tuple(stack.axis_nm), medium=stack.axis_medium or "vacuum")
         elif lamp is not None:
-            axis = _lamp_axis(lamp, reference, side, cam, p["calibration"])
+            axis = _lamp_axis(*lamp_e, reference, side, p["calibration"])
         else:
             raise InputError("no wavelength axis for the stack", path=stack_path, field="wavelength",
                              expected="an axis in the sidecar or the stack, or --lamp with --reference",
                              found="none")
         instrument = None
         if lamp is not None:
-            spectrum_e, read_noise = _lamp_spectrum(lamp, cam)
+            spectrum_e, read_noise = lamp_e
             try:
                 instrument = measure_instrument_profile(spectrum_e, read_noise_e=read_noise)
             except CalibrationError as exc:

@@ -33,7 +33,7 @@ from .. import tables
 from .._version import __version__
 from ..calibration import reference_lines, solve_dispersion
 from ..exceptions import InputError, LasecytoError
-from ..io import atomic_path, missing_files, read_manifest, write_json, write_table
+from ..io import atomic_path, missing_files, read_manifest, read_sidecar, write_json, write_table
 from ._cell import CellJob, CellResult, process_cell
 from ._engines import PARALLEL_MIN_S, Engine, make_engine
 from ._experiment import finish_experiment
@@ -68,13 +68,16 @@ class RunResult:
 
 
 def calibrate_lamp(lamp, parameters):
-    """Wavelength axis from the manifest's lamp frame.
+    """Wavelength axis and instrument function from the manifest's lamp frame (read once).
 
-    Returns ``(solution, summary)`` where ``summary`` is a plain dict for the
-    run record.
+    Returns ``(solution, summary, instrument)``: the dispersion solution, a
+    plain dict for the run record (the instrument function's summary, or why it
+    could not be measured, under ``"instrument"``) and the
+    :class:`~lasecyto.lines.InstrumentProfile` or None.
     """
     cp = parameters["calibration"]
-    spectrum_e, read_noise, sidecar = lamp_spectrum(lamp.stack, lamp.sidecar)
+    sidecar = read_sidecar(lamp.sidecar)
+    spectrum_e, read_noise = lamp_spectrum(lamp.stack, sidecar.camera)
     guess = sidecar.wavelength_guess or sidecar.wavelength
     if guess is None or guess.polynomial_nm is None:
         raise InputError("lamp sidecar has no nominal axis", path=lamp.sidecar, field="wavelength_guess",
@@ -89,7 +92,8 @@ def calibrate_lamp(lamp, parameters):
         "coefficients_nm": list(solution.coefficients_nm), "degree": solution.degree,
         "rms_nm": solution.rms_nm, "n_used": solution.n_used,
     }
-    return solution, summary
+    instrument, summary["instrument"] = lamp_instrument(spectrum_e, read_noise)
+    return solution, summary, instrument
 
 
 def _pump_safety(manifest):
@@ -339,9 +343,8 @@ def _run_locked(manifest, params, plan, out_dir, *, engine, resume, show_progres
     lamp_axis, lamp_error, calib_summary, instrument = None, None, None, None
     if manifest.lamp is not None:
         try:
-            solution, calib_summary = calibrate_lamp(manifest.lamp, params)
+            solution, calib_summary, instrument = calibrate_lamp(manifest.lamp, params)
             lamp_axis = solution.axis()
-            instrument, calib_summary["instrument"] = lamp_instrument(manifest.lamp)
             _write_text(out_dir / "calibration.txt", solution.report() + "\n")
             items.append({"item": "lamp", "status": "ok", "error": "", "seconds": None})
         except (LasecytoError, OSError) as exc:

@@ -21,7 +21,6 @@ group of the per-cell tables).
 from __future__ import annotations
 
 import logging
-import math
 import time
 from collections import Counter
 from pathlib import Path
@@ -35,7 +34,7 @@ from ._assets import CSS, SCRIPT
 from ._figures import plot_onsets, plot_traces_by_condition, plot_values_by_condition
 from ._mpl import require_matplotlib
 from ._panels import (FRAME_COLUMNS, LINE_COLUMNS, PATTERN_COLUMNS, TRACK_COLUMNS, CellData, PatternImages,
-                      draw_cell_panel, thin_trace, trace_columns)
+                      draw_cell_panel, thin_trace)
 from ._read import RunTables, read_record
 from ._render import img_tag, new_figure
 from ._sections import (cautions_html, cell_heading_html, cell_table_html, classifier_html, condition_order, esc,

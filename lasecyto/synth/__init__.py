@@ -23,18 +23,17 @@ slit_line_photons     narrow lines through a slit-image instrument function (opt
 add_cosmic_rays       single-pixel cosmic-ray hits added to frames
 """
 
-from ._experiment import write_fp_experiment, write_pattern_experiment
-from ._pump_scenario import write_pump_experiment
-from ._sphere_scenario import write_sphere_experiment
-from ._wgm import wgm_resonances
 from ._camera import add_cosmic_rays, camera_frames, slit_line_photons
-from ._experiment import write_fp_experiment
+from ._experiment import write_fp_experiment, write_pattern_experiment
 from ._media import water_index_daimon
 from ._modes import fp_mode_wavelengths
 from ._neon import neon_lines_air_nm, neon_relative_intensities
+from ._pump_scenario import write_pump_experiment
 from ._render import render_lamp_frame
+from ._sphere_scenario import write_sphere_experiment
 from ._tile import tile_experiment
 from ._trajectories import TRAJECTORY_SCENARIO, mode_trajectories
+from ._wgm import wgm_resonances
 
 __all__ = [
     "write_fp_experiment",

@@ -24,7 +24,7 @@ import numpy as np
 from ..exceptions import InputError
 from ._experiment import _camera, _toml_table, _write_json, _write_tiff
 from ._media import _air_to_vacuum_nm, _vacuum_to_air_nm
-from ._render import _eval_polynomial, _lorentzian_pixel_photons, _wavelength_to_pixel
+from ._render import _eval_polynomial, _gaussian_band, _lorentzian_pixel_photons, _wavelength_to_pixel
 from ._scenario import DETECTOR, _noisy_stack, _simulate_lamp
 from ._scenario import _validate as _validate_design
 from ._sphere_scenario import (SPHERE_SCENARIO, _cell_modes, _detector_window_vacuum_nm, _finish, _lamp_files,
@@ -90,7 +90,7 @@ def _simulate_cell(cell, n_levels, rng):
     pol, ell, order = _cell_modes(cell["diameter_um"], cell["index_offset"], False, window)
     lam, q_rad = wgm_resonances(cell["diameter_um"], polarization=pol, l=ell, radial_order=order,
                                 index_offset=cell["index_offset"])
-    gain = np.exp(-4.0 * np.log(2.0) * ((lam - cell["gain_center_nm"]) / sc["gain_fwhm_nm"]) ** 2)
+    gain = _gaussian_band(lam, cell["gain_center_nm"], sc["gain_fwhm_nm"])
     fam = np.array([sc["family_factor"][(p, int(n))] for p, n in zip(pol, order)])
     strength = gain * fam
     main = int(np.argmax(strength))

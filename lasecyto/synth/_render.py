@@ -32,6 +32,23 @@ def _lorentzian_pixel_photons(center_px, fwhm_px, photons, n_pixels):
     return np.asarray(photons, dtype=float)[..., None] * np.diff(cdf, axis=-1)
 
 
+def _lines_spectrum(center_px, photons, lasing, fwhm_px, n_pixels):
+    """Photons per pixel (frames, n_pixels) of the lasing lines; the other arguments are (frames, modes)."""
+    spectrum = np.zeros((lasing.shape[0], n_pixels))
+    fi, mi = np.nonzero(lasing)
+    if fi.size:
+        prof = _lorentzian_pixel_photons(center_px[fi, mi], fwhm_px, photons[fi, mi], n_pixels)
+        onehot = np.zeros((lasing.shape[0], fi.size))
+        onehot[fi, np.arange(fi.size)] = 1.0
+        spectrum += onehot @ prof
+    return spectrum
+
+
+def _gaussian_band(x, center, fwhm):
+    """Peak-normalised Gaussian band ``exp(-4 ln2 ((x - center) / fwhm)^2)`` (gain window, dye fluorescence)."""
+    return np.exp(-4.0 * np.log(2.0) * ((x - center) / fwhm) ** 2)
+
+
 def _gaussian_pixel_photons(center_px, fwhm_px, photons, n_pixels):
     """Expected photons per pixel of Gaussian lines, integrated exactly over each pixel (erf CDF)."""
     c = np.asarray(center_px, dtype=float)[..., None]

@@ -22,8 +22,9 @@ from ._patterns import PATTERN_ORDERS, iter_pattern_frames
 from ._render import (
     _detector_counts,
     _eval_polynomial,
+    _gaussian_band,
     _gaussian_pixel_photons,
-    _lorentzian_pixel_photons,
+    _lines_spectrum,
     _to_uint16,
     _wavelength_to_pixel,
 )
@@ -197,26 +198,19 @@ def _simulate_cell(cell, times_s, pump, dropout, rng):
     center_px = _wavelength_to_pixel(poly, _vacuum_to_air_nm(lam_vac))
     on_det = (center_px >= -0.5) & (center_px <= n_pix - 0.5)
 
-    gain = np.exp(-4.0 * np.log(2.0) * ((lam_vac - cell["gain_center_nm"]) / sc["gain_fwhm_nm"]) ** 2)
+    gain = _gaussian_band(lam_vac, cell["gain_center_nm"], sc["gain_fwhm_nm"])
     bleach = np.exp(-times_s / cell["bleach_tau_s"])
     fam = np.asarray(sc["family_factor"])[k]
     expected = cell["peak_photons"] * gain * fam[None, :] * (pump * bleach)[:, None]
     lasing = (expected >= sc["threshold_fraction"] * cell["peak_photons"]) & on_det & ~dropout[:, None]
     photons = np.where(lasing, expected, 0.0)
 
-    spectrum = np.zeros((n_frames, n_pix))
-    fi, mi = np.nonzero(lasing)
-    if fi.size:
-        prof = _lorentzian_pixel_photons(center_px[fi, mi], cell["line_fwhm_px"], photons[fi, mi], n_pix)
-        onehot = np.zeros((n_frames, fi.size))
-        onehot[fi, np.arange(fi.size)] = 1.0
-        spectrum += onehot @ prof
+    spectrum = _lines_spectrum(center_px, photons, lasing, cell["line_fwhm_px"], n_pix)
 
     # Broad dye fluorescence under the lines, scaled by pump energy and bleaching.
     px_vac = _air_to_vacuum_nm(_eval_polynomial(poly, np.arange(n_pix)))
     bg_center = cell["gain_center_nm"] + sc["background_shift_nm"]
-    bg = cell["background_peak_photons"] * np.exp(
-        -4.0 * np.log(2.0) * ((px_vac - bg_center) / sc["background_fwhm_nm"]) ** 2)
+    bg = cell["background_peak_photons"] * _gaussian_band(px_vac, bg_center, sc["background_fwhm_nm"])
     spectrum += (pump * bleach)[:, None] * bg[None, :]
 
     frames = {

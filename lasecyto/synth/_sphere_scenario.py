@@ -25,7 +25,7 @@ import numpy as np
 from ..exceptions import InputError
 from ._experiment import _camera, _toml_table, _write_csv, _write_json, _write_tiff
 from ._media import _air_to_vacuum_nm, _vacuum_to_air_nm, water_index_daimon
-from ._render import _eval_polynomial, _lorentzian_pixel_photons, _wavelength_to_pixel
+from ._render import _eval_polynomial, _gaussian_band, _lines_spectrum, _wavelength_to_pixel
 from ._scenario import DETECTOR, LAMP, _noisy_stack, _simulate_lamp, _validate
 from ._wgm import wgm_resonances
 
@@ -226,7 +226,7 @@ def _simulate_cell(cell, times_s, rng):
     on_det = (center_px >= -0.5) & (center_px <= n_pix - 0.5)
 
     fam = np.array([sc["family_factor"][(p, int(n))] for p, n in zip(pol, order)])
-    gain = np.exp(-4.0 * np.log(2.0) * ((lam_vac - cell["gain_center_nm"]) / sc["gain_fwhm_nm"]) ** 2)
+    gain = _gaussian_band(lam_vac, cell["gain_center_nm"], sc["gain_fwhm_nm"])
     bleach = np.exp(-times_s / cell["bleach_tau_s"])
     expected = cell["peak_photons"] * gain * fam[None, :] * (pump * bleach)[:, None]
     lasing = ((expected >= sc["threshold_fraction"] * cell["peak_photons"]) & on_det & ~dropout[:, None]
@@ -239,17 +239,10 @@ def _simulate_cell(cell, times_s, rng):
         lasing[f] = row
     photons = np.where(lasing, expected, 0.0)
 
-    spectrum = np.zeros((n_frames, n_pix))
-    fi, mi = np.nonzero(lasing)
-    if fi.size:
-        prof = _lorentzian_pixel_photons(center_px[fi, mi], cell["line_fwhm_px"], photons[fi, mi], n_pix)
-        onehot = np.zeros((n_frames, fi.size))
-        onehot[fi, np.arange(fi.size)] = 1.0
-        spectrum += onehot @ prof
+    spectrum = _lines_spectrum(center_px, photons, lasing, cell["line_fwhm_px"], n_pix)
     px_vac = _air_to_vacuum_nm(_eval_polynomial(poly, np.arange(n_pix)))
     bg_center = cell["gain_center_nm"] + sc["background_shift_nm"]
-    bg = cell["background_peak_photons"] * np.exp(
-        -4.0 * np.log(2.0) * ((px_vac - bg_center) / sc["background_fwhm_nm"]) ** 2)
+    bg = cell["background_peak_photons"] * _gaussian_band(px_vac, bg_center, sc["background_fwhm_nm"])
     spectrum += ((pump * bleach) * ~dropout)[:, None] * bg[None, :]
 
     n_ref = water_index_daimon(sc["reference_nm"] * 1e-3)

@@ -30,6 +30,7 @@ import numpy as np
 import pandas as pd
 
 from ..exceptions import InputError
+from ._render import _gaussian_band
 
 __all__ = ["TRAJECTORY_SCENARIO", "mode_trajectories"]
 
@@ -97,7 +98,7 @@ def _modes(zeta, rel_shift):
 
 def _natural_lasing(lam, k):
     sc = TRAJECTORY_SCENARIO
-    gain = np.exp(-4.0 * np.log(2.0) * ((lam - sc["gain_center_nm"]) / sc["gain_fwhm_nm"]) ** 2)
+    gain = _gaussian_band(lam, sc["gain_center_nm"], sc["gain_fwhm_nm"])
     level = gain * np.asarray(sc["family_factor"])[k][None, :]
     lo, hi = sc["window_nm"]
     return level, (level >= sc["threshold"]) & (lam > lo) & (lam < hi)

@@ -4,7 +4,6 @@ import json
 import shutil
 import tomllib
 
-import numpy as np
 import pytest
 import tifffile
 
